@@ -1,0 +1,334 @@
+"""Run configs: YAML -> validated, frozen config objects with defaults.
+
+Every section is a frozen dataclass.  Each field carries its validation rule in
+``metadata`` (``kind`` plus optional ``min``/``max``/``choices``/``length``);
+``load_config`` walks the YAML mapping, refuses unknown keys (suggesting the
+closest one), checks types and ranges, and runs each section's cross-field
+``check``.  Every problem is raised as :class:`InputError` with a one-line
+message naming the file, the key path, what was found and what is allowed.
+
+Adding a section: write a dataclass below with ``_f(...)`` fields, add it to
+``RunConfig`` and to ``SECTIONS``.
+"""
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import hashlib
+import json
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+
+class InputError(Exception):
+    """Bad input (file or config).  The message is one complete line."""
+
+
+def _f(default, kind, **rules):
+    """A config field: default value, kind name and validation rules."""
+    meta = dict(kind=kind, **rules)
+    if isinstance(default, (list, dict)):
+        raise TypeError("use tuples for sequence defaults")
+    return field(default=default, metadata=meta)
+
+
+def is_pow2(n: int) -> bool:
+    return n >= 1 and (n & (n - 1)) == 0
+
+
+# --------------------------------------------------------------------------- sections
+@dataclass(frozen=True)
+class MapSection:
+    path: str | None = _f(None, "path?")
+    field: int = _f(0, "int", min=0)
+    mask: str | None = _f(None, "path?")
+    mask_field: int = _f(0, "int", min=0)
+    mask_threshold: float = _f(0.5, "float", min=0.0, max=1.0, open_min=True)
+
+    def check(self, where):
+        pass
+
+
+@dataclass(frozen=True)
+class PrepareSection:
+    nside: int = _f(64, "int", min=1, pow2=True)
+    fwhm_deg: float = _f(3.0, "float", min=0.0)
+    lmax: int = _f(128, "int", min=2)
+    lmin: int = _f(2, "int", min=0)
+    remove_dipole: bool = _f(True, "bool")
+    iterations: int = _f(3, "int", min=0, max=10)
+
+    def check(self, where):
+        if self.lmax > 3 * self.nside - 1:
+            raise where("lmax", self.lmax, f"at most 3*nside-1 = {3 * self.nside - 1} for nside {self.nside}")
+        if self.lmin >= self.lmax:
+            raise where("lmin", self.lmin, f"below lmax = {self.lmax}")
+
+
+@dataclass(frozen=True)
+class SearchSection:
+    family: str = _f("antipodal", "str", choices=("antipodal", "general", "listed"))
+    method: str = _f("exhaustive", "str", choices=("exhaustive", "fast"))
+    nside_centers: int = _f(32, "int", min=1, pow2=True)
+    radius_deg: tuple = _f((20.0, 80.0, 1.0), "floats", length=3)
+    separation_deg: tuple = _f((10.0, 180.0), "floats", length=2)
+    weighting: str = _f("m", "str", choices=("m", "flat"))
+    top: int = _f(50, "int", min=1, max=100000)
+    listed: str | None = _f(None, "path?")
+    min_valid_fraction: float = _f(0.5, "float", min=0.0, max=1.0, open_min=True)
+    sample_margin: int = _f(8, "int", min=0, max=1000)
+    refine: bool = _f(True, "bool")
+    suppress_deg: float = _f(0.0, "float", min=0.0, max=90.0)
+    keep_per_radius: int = _f(200, "int", min=1, max=1000000)
+    screen_partners: int = _f(64, "int", min=1, max=100000)
+    screen_mmax: int = _f(0, "int", min=0)
+
+    def check(self, where):
+        lo, hi, step = self.radius_deg
+        if step <= 0:
+            raise where("radius_deg", list(self.radius_deg), "a step [min, max, step] with step > 0")
+        if not (0 < lo <= hi <= 90):
+            raise where("radius_deg", list(self.radius_deg), "0 < min <= max <= 90 degrees")
+        slo, shi = self.separation_deg
+        if not (0 < slo <= shi <= 180):
+            raise where("separation_deg", list(self.separation_deg), "0 < min <= max <= 180 degrees")
+        if self.family == "listed" and not self.listed:
+            raise where("listed", None, "a table path when family is 'listed'")
+
+    def radii_deg(self):
+        lo, hi, step = self.radius_deg
+        n = int(math.floor((hi - lo) / step + 1e-9)) + 1
+        return [round(lo + i * step, 10) for i in range(n)]
+
+
+@dataclass(frozen=True)
+class OutputSection:
+    dir: str = _f("out", "str")
+
+    def check(self, where):
+        pass
+
+
+@dataclass(frozen=True)
+class ComputeSection:
+    backend: str = _f("serial", "str", choices=("serial", "processes", "dask"))
+    workers: int = _f(1, "int", min=1, max=4096)
+    scheduler: str | None = _f(None, "str?")
+    memory_gb: float = _f(4.0, "float", min=0.05, max=100000.0)
+    threads: int = _f(0, "int", min=0, max=4096)
+    progress: bool = _f(True, "bool")
+
+    def check(self, where):
+        pass
+
+
+SECTIONS = {
+    "map": MapSection,
+    "prepare": PrepareSection,
+    "search": SearchSection,
+    "output": OutputSection,
+    "compute": ComputeSection,
+}
+
+
+@dataclass(frozen=True)
+class RunConfig:
+    map: MapSection = field(default_factory=MapSection)
+    prepare: PrepareSection = field(default_factory=PrepareSection)
+    search: SearchSection = field(default_factory=SearchSection)
+    output: OutputSection = field(default_factory=OutputSection)
+    compute: ComputeSection = field(default_factory=ComputeSection)
+    source: str = ""          # the file the config came from (not a YAML key)
+    present: tuple = ()       # the sections the YAML file named
+
+    def to_dict(self) -> dict:
+        out = {}
+        for name in SECTIONS:
+            sec = getattr(self, name)
+            out[name] = {k: (list(v) if isinstance(v, tuple) else v) for k, v in dataclasses.asdict(sec).items()}
+        return out
+
+    def hash(self) -> str:
+        """Hash of the resolved config (all sections), stable across runs."""
+        blob = json.dumps(self.to_dict(), sort_keys=True, default=str).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+    def section_hash(self, *names) -> str:
+        d = self.to_dict()
+        blob = json.dumps({n: d[n] for n in names}, sort_keys=True, default=str).encode()
+        return hashlib.sha256(blob).hexdigest()[:16]
+
+    def replace(self, **sections) -> "RunConfig":
+        return dataclasses.replace(self, **sections)
+
+
+# --------------------------------------------------------------------------- validation
+def _fmt(v):
+    if isinstance(v, str):
+        return repr(v)
+    return json.dumps(v, default=str)
+
+
+def _checker(source, path):
+    def where(key, found, allowed):
+        return InputError(f"{source}: {path}.{key}: found {_fmt(found)}; allowed: {allowed}")
+    return where
+
+
+def _coerce(source, keypath, value, meta, base_dir):
+    kind = meta["kind"]
+    optional = kind.endswith("?")
+    kind = kind.rstrip("?")
+
+    def bad(allowed):
+        return InputError(f"{source}: {keypath}: found {_fmt(value)}; allowed: {allowed}")
+
+    if value is None:
+        if optional:
+            return None
+        raise bad(f"a value of type {kind}")
+    if kind == "bool":
+        if not isinstance(value, bool):
+            raise bad("true or false")
+        return value
+    if kind == "int":
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise bad("an integer" + _range_text(meta))
+        _check_range(value, meta, bad)
+        if meta.get("pow2") and not is_pow2(value):
+            raise bad("a power of two (1, 2, 4, 8, ...)")
+        return value
+    if kind == "float":
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise bad("a number" + _range_text(meta))
+        _check_range(value, meta, bad)
+        return float(value)
+    if kind in ("str", "path"):
+        if not isinstance(value, str) or not value:
+            raise bad("a non-empty string" if "choices" not in meta else " | ".join(meta["choices"]))
+        if "choices" in meta and value not in meta["choices"]:
+            raise bad(" | ".join(meta["choices"]))
+        if kind == "path":
+            p = Path(value).expanduser()
+            if not p.is_absolute() and base_dir is not None:
+                p = base_dir / p
+            return str(p)
+        return value
+    if kind == "floats":
+        n = meta.get("length")
+        if not isinstance(value, (list, tuple)) or (n is not None and len(value) != n) or not all(
+            isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x) for x in value
+        ):
+            raise bad(f"a list of {n if n else 'some'} numbers")
+        return tuple(float(x) for x in value)
+    if kind == "any":
+        return value
+    raise TypeError(f"unknown field kind {kind}")
+
+
+def _range_text(meta):
+    parts = []
+    if "min" in meta:
+        parts.append((">" if meta.get("open_min") else ">=") + f" {meta['min']}")
+    if "max" in meta:
+        parts.append(f"<= {meta['max']}")
+    return (" " + " and ".join(parts)) if parts else ""
+
+
+def _check_range(value, meta, bad):
+    lo, hi = meta.get("min"), meta.get("max")
+    if lo is not None and (value < lo or (meta.get("open_min") and value == lo)):
+        raise bad("a number" + _range_text(meta))
+    if hi is not None and value > hi:
+        raise bad("a number" + _range_text(meta))
+
+
+def _suggest(key, choices):
+    close = difflib.get_close_matches(key, list(choices), n=1, cutoff=0.5)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def build_section(cls, raw, source, path, base_dir):
+    """Validate one section's mapping into its frozen dataclass."""
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, dict):
+        raise InputError(f"{source}: {path}: found {_fmt(raw)}; allowed: a mapping of keys")
+    fields = {f.name: f for f in dataclasses.fields(cls)}
+    values = {}
+    for key, value in raw.items():
+        if key not in fields:
+            raise InputError(
+                f"{source}: {path}.{key}: unknown key{_suggest(str(key), fields)}; allowed: {', '.join(fields)}"
+            )
+        values[key] = _coerce(source, f"{path}.{key}", value, fields[key].metadata, base_dir)
+    sec = cls(**values)
+    sec.check(_checker(source, path))
+    return sec
+
+
+def config_from_dict(raw: dict, source: str = "<config>", base_dir: Path | None = None) -> RunConfig:
+    if not isinstance(raw, dict):
+        raise InputError(f"{source}: top level: found {type(raw).__name__}; allowed: a mapping of sections")
+    sections = {}
+    for key, value in raw.items():
+        if key not in SECTIONS:
+            raise InputError(
+                f"{source}: {key}: unknown section{_suggest(str(key), SECTIONS)}; allowed: {', '.join(SECTIONS)}"
+            )
+        sections[key] = build_section(SECTIONS[key], value, source, key, base_dir)
+    cfg = RunConfig(**sections, source=source, present=tuple(raw))
+    _cross_checks(cfg)
+    return cfg
+
+
+def _cross_checks(cfg: RunConfig):
+    """Checks between sections (each names the key to change)."""
+    for hook in CROSS_CHECKS:
+        hook(cfg)
+
+
+CROSS_CHECKS: list = []
+
+
+def load_config(path, overrides: dict | None = None) -> RunConfig:
+    """Read a YAML run config (safe loading only) and validate it."""
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{p}: config file not found")
+    try:
+        text = p.read_text()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"{p}: cannot read config ({exc.__class__.__name__}: {exc})")
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
+        mark = getattr(exc, "problem_mark", None)
+        at = f" at line {mark.line + 1}" if mark is not None else ""
+        raise InputError(f"{p}: not valid YAML{at}: {first}; allowed: plain YAML mappings (no tags)")
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, dict):
+        raise InputError(f"{p}: top level: found {type(raw).__name__}; allowed: a mapping of sections")
+    if overrides:
+        raw = _merge(raw, overrides)
+    return config_from_dict(raw, source=str(p), base_dir=p.resolve().parent)
+
+
+def _merge(raw, overrides):
+    out = dict(raw)
+    for k, v in overrides.items():
+        if isinstance(v, dict) and isinstance(out.get(k), dict):
+            out[k] = _merge(out[k], v)
+        else:
+            out[k] = v
+    return out
+
+
+def dump_config(cfg: RunConfig) -> str:
+    return yaml.safe_dump(cfg.to_dict(), sort_keys=False)
