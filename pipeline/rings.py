@@ -147,3 +147,26 @@ def sample_rings(alm, lmax, centres, radius_rad, nsamp, other=None, mask=None, n
     pts = ring_points(centres, radius_rad, nsamp, other)
     vals = synthesize_at(alm, lmax, pts, nthreads=nthreads)
     return vals, mask_at(mask, pts)
+
+
+def _origin_angle(centre, other):
+    """Angle of the pair-convention phase origin, measured in the reference (back-to-back) frame."""
+    e1r, e2r = phase_frame(centre, None)
+    e1, _ = phase_frame(centre, other)
+    return np.arctan2(np.sum(e1 * e2r, -1), np.sum(e1 * e1r, -1))
+
+
+def twist_from_reference(beta_ref, c1, c2, flip):
+    """Convert a twist measured on rings sampled in the reference frame (``other=None``)
+    into the pair convention of :func:`phase_frame` (radians, [0, 2pi)).
+
+    With phase origins at angles d1, d2 of the reference frames, phi_conv = phi_ref - d,
+    so flip = False: twist = beta_ref + d1 - d2 and flip = True: twist = beta_ref - d1 - d2.
+    """
+    c1 = np.atleast_2d(c1)
+    c2 = np.atleast_2d(c2)
+    d1 = _origin_angle(c1, c2)
+    d2 = _origin_angle(c2, c1)
+    flip = np.asarray(flip, dtype=bool)
+    tw = np.where(flip, beta_ref - d1 - d2, beta_ref + d1 - d2)
+    return np.mod(tw, 2 * np.pi)

@@ -1,0 +1,444 @@
+"""The matched-circle search: pair families, chunked scan, one candidate per physical pair.
+
+The work is split into chunks with stable identities ``(radius index, block
+index)``.  :func:`scan_chunk` is a pure function of the plan and the chunk id;
+the results of all chunks, combined in chunk-id order by :func:`combine`, do
+not depend on how, where or in what order the chunks ran.  :func:`finalize`
+pools the best pairs of every radius, suppresses neighbours of stronger
+candidates, refines the survivors off the grid (centres, radius, twist) and
+returns the candidate and peak tables.
+
+Rings are sampled in the reference phase frame of every centre (the
+back-to-back rule of :mod:`pipeline.rings`), so one ring set per radius serves
+every pair; twists are converted to the pair convention at the end.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import healpy as hp
+from astropy.table import Table
+from scipy.optimize import minimize
+
+from . import rings
+from .statistic import ring_spectra, scan_pairs, s_curve
+from .config import InputError
+
+TARGET_PAIRS_PER_CHUNK = 2_000_000
+
+
+@dataclass(frozen=True)
+class SearchPlan:
+    """Everything any chunk needs; small enough to ship to remote workers."""
+    alm: np.ndarray
+    lmax: int
+    mask: np.ndarray | None          # prepared mask (RING, 0/1) or None when nothing is masked
+    centres: np.ndarray              # (n, 3) unit vectors
+    radii_deg: tuple
+    nsamp: tuple                     # samples per ring at each radius
+    family: str
+    blocks: tuple                    # per block: array of first-circle indices
+    partner: np.ndarray | None       # antipodal/listed: second-circle index of each first index
+    sep_cos: tuple                   # general: (cos max sep, cos min sep)
+    weighting: str
+    min_valid_fraction: float
+    keep: int                        # best pairs kept per chunk, radius and sense
+    threads: int
+    grid_deg: float                  # centre spacing, for suppression and refinement
+    key: str = ""                    # identity of the plan (for ring caches)
+
+    def chunk_ids(self):
+        return [(ir, ib) for ir in range(len(self.radii_deg)) for ib in range(len(self.blocks))]
+
+
+@dataclass
+class ChunkResult:
+    """Best pairs of one chunk: arrays of equal length (sorted by s, then ids)."""
+    chunk: tuple
+    s: np.ndarray
+    i: np.ndarray
+    j: np.ndarray
+    sense: np.ndarray
+    k: np.ndarray
+    peak_s: np.ndarray = field(default=None)      # (2,) best s per sense in this chunk
+    peak_idx: np.ndarray = field(default=None)    # (2, 3): i, j, k of that best
+    pairs: int = 0
+
+
+# --------------------------------------------------------------------------- plan
+def centre_spacing_deg(nside):
+    return math.degrees(hp.nside2resol(nside))
+
+
+def make_plan(prepared, scfg, compute=None, listed_table=None, key="") -> SearchPlan:
+    """Build the search plan from a prepared map and the config's search section."""
+    radii = tuple(scfg.radii_deg())
+    nsamp = tuple(rings.samples_for(math.radians(r), prepared.lmax, scfg.sample_margin) for r in radii)
+    mask = prepared.mask
+    if mask is not None and np.all(mask > 0.5):
+        mask = None
+    smin, smax = scfg.separation_deg
+    sep_cos = (math.cos(math.radians(smax)), math.cos(math.radians(smin)))
+    partner = None
+    if scfg.family == "listed":
+        if listed_table is None:
+            raise InputError(f"search.listed: no table given; allowed: a table of circle pairs")
+        c1 = rings.lonlat_to_vec(np.asarray(listed_table["lon1_deg"], float), np.asarray(listed_table["lat1_deg"], float))
+        c2 = rings.lonlat_to_vec(np.asarray(listed_table["lon2_deg"], float), np.asarray(listed_table["lat2_deg"], float))
+        centres = np.concatenate([c1, c2])
+        first = np.arange(len(c1))
+        partner = np.concatenate([np.arange(len(c1)) + len(c1), np.zeros(len(c1), int)])
+        grid = 1.0
+        per_block = max(1, TARGET_PAIRS_PER_CHUNK)
+    else:
+        centres = rings.center_grid(scfg.nside_centers)
+        grid = centre_spacing_deg(scfg.nside_centers)
+        n = centres.shape[0]
+        if scfg.family == "antipodal":
+            partner = rings.antipode_index(scfg.nside_centers)
+            first = np.flatnonzero(np.arange(n) < partner)
+            per_block = max(1, TARGET_PAIRS_PER_CHUNK)
+        else:
+            first = np.arange(n)
+            frac = max((sep_cos[1] - sep_cos[0]) / 2, 1e-6)
+            per_block = max(1, int(TARGET_PAIRS_PER_CHUNK / max(1.0, n * frac / 2)))
+    blocks = tuple(first[lo:lo + per_block] for lo in range(0, first.size, per_block))
+    threads = 1 if compute is None else max(1, compute.threads or 1)
+    return SearchPlan(
+        alm=np.asarray(prepared.alm), lmax=int(prepared.lmax), mask=mask, centres=centres, radii_deg=radii,
+        nsamp=nsamp, family=scfg.family, blocks=blocks, partner=partner, sep_cos=sep_cos,
+        weighting=scfg.weighting, min_valid_fraction=scfg.min_valid_fraction, keep=scfg.keep_per_radius,
+        threads=threads, grid_deg=(scfg.suppress_deg or grid), key=key,
+    )
+
+
+def count_pairs(plan: SearchPlan) -> int:
+    """Number of circle pairs one radius scans (both senses count once)."""
+    return sum(_block_pairs(plan, ib)[0].size for ib in range(len(plan.blocks)))
+
+
+def _block_pairs(plan: SearchPlan, ib):
+    first = plan.blocks[ib]
+    if plan.family in ("antipodal", "listed"):
+        return first, plan.partner[first]
+    c = plan.centres
+    lo, hi = plan.sep_cos
+    ii, jj = [], []
+    for i in first:
+        d = c[i + 1:] @ c[i]
+        j = np.flatnonzero((d >= lo - 1e-12) & (d <= hi + 1e-12)) + i + 1
+        ii.append(np.full(j.size, i, dtype=np.int64))
+        jj.append(j)
+    if not ii:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    return np.concatenate(ii), np.concatenate(jj)
+
+
+# --------------------------------------------------------------------------- rings per radius
+_RING_CACHE: dict = {}
+
+
+def ring_set(plan: SearchPlan, ir):
+    """Spectra of the rings about every centre at radius index ``ir`` (cached per process)."""
+    key = (plan.key, id(plan.alm), ir)
+    hit = _RING_CACHE.get(key)
+    if hit is not None:
+        return hit
+    alpha = math.radians(plan.radii_deg[ir])
+    vals, wts = rings.sample_rings(plan.alm, plan.lmax, plan.centres, alpha, plan.nsamp[ir], None, plan.mask,
+                                   nthreads=plan.threads)
+    spec = ring_spectra(vals, wts, plan.weighting)
+    _RING_CACHE.clear()   # one radius at a time per process bounds memory
+    _RING_CACHE[key] = spec
+    return spec
+
+
+# --------------------------------------------------------------------------- the chunk kernel
+def scan_chunk(plan: SearchPlan, chunk) -> ChunkResult:
+    ir, ib = chunk
+    spec = ring_set(plan, ir)
+    i, j = _block_pairs(plan, ib)
+    s, k = scan_pairs(spec, i, spec, j, plan.min_valid_fraction, workers=plan.threads)
+    peak_s = np.full(2, -np.inf)
+    peak_idx = np.zeros((2, 3), dtype=np.int64)
+    keep_s, keep_i, keep_j, keep_sense, keep_k = [], [], [], [], []
+    for sense in (0, 1):
+        if s.shape[1] == 0:
+            continue
+        row = s[sense]
+        nk = min(plan.keep, row.size)
+        top = np.argpartition(-row, nk - 1)[:nk] if nk < row.size else np.arange(row.size)
+        top = top[np.isfinite(row[top])]
+        keep_s.append(row[top]); keep_i.append(i[top]); keep_j.append(j[top])
+        keep_sense.append(np.full(top.size, sense, np.int8)); keep_k.append(k[sense, top])
+        if top.size:
+            b = top[np.lexsort((j[top], i[top], -row[top]))[0]]
+            peak_s[sense] = row[b]
+            peak_idx[sense] = (i[b], j[b], k[sense, b])
+    cat = (lambda xs, dt: np.concatenate(xs).astype(dt) if xs else np.zeros(0, dt))
+    res = ChunkResult(chunk, cat(keep_s, np.float64), cat(keep_i, np.int64), cat(keep_j, np.int64),
+                      cat(keep_sense, np.int8), cat(keep_k, np.int64), peak_s, peak_idx, int(i.size))
+    order = np.lexsort((res.k, res.sense, res.j, res.i, -res.s))
+    for name in ("s", "i", "j", "sense", "k"):
+        setattr(res, name, getattr(res, name)[order])
+    return res
+
+
+# --------------------------------------------------------------------------- combining chunks
+@dataclass
+class Pool:
+    """Best pairs per radius and peaks, combined over chunks (order-independent)."""
+    radius_index: np.ndarray
+    s: np.ndarray
+    i: np.ndarray
+    j: np.ndarray
+    sense: np.ndarray
+    k: np.ndarray
+    peak_s: np.ndarray        # (n_radii, 2)
+    peak_idx: np.ndarray      # (n_radii, 2, 3)
+    pairs_scanned: int
+
+
+def combine(plan: SearchPlan, results) -> Pool:
+    results = sorted(results, key=lambda r: tuple(r.chunk))
+    nr = len(plan.radii_deg)
+    peak_s = np.full((nr, 2), -np.inf)
+    peak_idx = np.zeros((nr, 2, 3), dtype=np.int64)
+    parts = {ir: [] for ir in range(nr)}
+    total = 0
+    for r in results:
+        ir = r.chunk[0]
+        parts[ir].append(r)
+        total += r.pairs
+        for sense in (0, 1):
+            cur = peak_s[ir, sense]
+            cand = r.peak_s[sense]
+            if cand > cur or (cand == cur and np.isfinite(cand) and tuple(r.peak_idx[sense]) < tuple(peak_idx[ir, sense])):
+                peak_s[ir, sense] = cand
+                peak_idx[ir, sense] = r.peak_idx[sense]
+    cols = {n: [] for n in ("radius_index", "s", "i", "j", "sense", "k")}
+    for ir in range(nr):
+        if not parts[ir]:
+            continue
+        s = np.concatenate([p.s for p in parts[ir]])
+        i = np.concatenate([p.i for p in parts[ir]])
+        j = np.concatenate([p.j for p in parts[ir]])
+        sense = np.concatenate([p.sense for p in parts[ir]])
+        k = np.concatenate([p.k for p in parts[ir]])
+        sel = []
+        for sn in (0, 1):
+            idx = np.flatnonzero(sense == sn)
+            idx = idx[np.lexsort((k[idx], j[idx], i[idx], -s[idx]))][: plan.keep]
+            sel.append(idx)
+        sel = np.concatenate(sel)
+        cols["radius_index"].append(np.full(sel.size, ir))
+        for n, arr in (("s", s), ("i", i), ("j", j), ("sense", sense), ("k", k)):
+            cols[n].append(arr[sel])
+    cat = {n: (np.concatenate(v) if v else np.zeros(0)) for n, v in cols.items()}
+    return Pool(cat["radius_index"].astype(int), cat["s"].astype(float), cat["i"].astype(int), cat["j"].astype(int),
+                cat["sense"].astype(int), cat["k"].astype(int), peak_s, peak_idx, total)
+
+
+# --------------------------------------------------------------------------- refinement
+def _tangent_basis(c):
+    c = rings.unit(c)
+    ref = np.array([0.0, 0.0, 1.0]) if abs(c[2]) < 0.9 else np.array([1.0, 0.0, 0.0])
+    u = rings.unit(np.cross(ref, c))
+    v = np.cross(c, u)
+    return u, v
+
+
+def _offset(c, u, v, dx, dy):
+    return rings.unit(c + math.radians(dx) * u + math.radians(dy) * v)
+
+
+def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8):
+    """Best S over twist for one pair at any centres and radius: (s, twist_ref_rad, flip) per sense."""
+    alpha = math.radians(radius_deg)
+    nsamp = rings.samples_for(alpha, plan.lmax)
+    pts = np.concatenate([rings.ring_points(c1, alpha, nsamp), rings.ring_points(c2, alpha, nsamp)])
+    vals = rings.synthesize_at(plan.alm, plan.lmax, pts, nthreads=1)
+    wts = rings.mask_at(plan.mask, pts)
+    out = []
+    for flip in (False, True):
+        if wts is None:
+            curve = s_curve(vals[0], vals[1], flip, plan.weighting, oversample=oversample)
+            n_out = curve.size
+        else:
+            u1, u2 = wts[0], wts[1]
+            if min(u1.mean(), u2.mean()) < plan.min_valid_fraction:
+                out.append((-np.inf, 0.0))
+                continue
+            curve = s_curve(vals[0], vals[1], flip, plan.weighting, u1, u2)
+            n_out = curve.size
+        kk = int(np.argmax(curve))
+        best = curve[kk]
+        # parabolic refinement of the twist between grid points
+        ym, yp = curve[kk - 1], curve[(kk + 1) % n_out]
+        denom = ym - 2 * best + yp
+        delta = 0.5 * (ym - yp) / denom if denom < 0 else 0.0
+        out.append((float(best), 2 * math.pi * (kk + delta) / n_out))
+    return out
+
+
+def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
+    """Local maximisation of S over centres and radius (Nelder-Mead), twist maximised inside."""
+    u1, v1 = _tangent_basis(c1)
+    u2, v2 = _tangent_basis(c2)
+    step = plan.grid_deg
+
+    def unpack(x):
+        a = _offset(c1, u1, v1, x[0], x[1])
+        if antipodal:
+            return a, -a, radius_deg + x[2]
+        return a, _offset(c2, u2, v2, x[3], x[4]), radius_deg + x[2]
+
+    def negs(x):
+        a, b, r = unpack(x)
+        if not (0.5 < r <= 90.0):
+            return 2.0
+        return -pair_statistic(plan, a, b, r)[sense][0]
+
+    n = 3 if antipodal else 5
+    x0 = np.zeros(n)
+    simplex = [x0]
+    scales = [0.5 * step, 0.5 * step, 1.0, 0.5 * step, 0.5 * step][:n]
+    for d in range(n):
+        e = np.zeros(n)
+        e[d] = scales[d]
+        simplex.append(e)
+    res = minimize(negs, x0, method="Nelder-Mead",
+                   options=dict(initial_simplex=np.array(simplex), xatol=0.02, fatol=1e-4, maxfev=40 * n))
+    a, b, r = unpack(res.x)
+    s0 = -negs(x0)
+    if -res.fun < s0:   # never worse than the start
+        a, b, r = unpack(x0)
+    s, tw = pair_statistic(plan, a, b, r)[sense]
+    return a, b, float(min(r, 90.0)), s, tw
+
+
+# --------------------------------------------------------------------------- candidates
+def suppress(c1, c2, radius, s, centre_tol_deg, radius_tol_deg, limit=None):
+    """Greedy non-maximum suppression: indices of kept entries, strongest first.
+
+    An entry is dropped when a stronger kept one has both centres within
+    ``centre_tol_deg`` (in either order) and a radius within ``radius_tol_deg``.
+    """
+    order = np.lexsort((radius, -s))
+    cos_tol = math.cos(math.radians(centre_tol_deg))
+    kept = []
+    k1 = np.zeros((0, 3)); k2 = np.zeros((0, 3)); kr = np.zeros(0)
+    for idx in order:
+        if kept:
+            same = ((k1 @ c1[idx] >= cos_tol) & (k2 @ c2[idx] >= cos_tol)) | (
+                (k1 @ c2[idx] >= cos_tol) & (k2 @ c1[idx] >= cos_tol))
+            if np.any(same & (np.abs(kr - radius[idx]) <= radius_tol_deg)):
+                continue
+        kept.append(idx)
+        k1 = np.vstack([k1, c1[idx]]); k2 = np.vstack([k2, c2[idx]]); kr = np.append(kr, radius[idx])
+        if limit is not None and len(kept) >= limit:
+            break
+    return np.array(kept, dtype=int)
+
+
+def radius_window(plan: SearchPlan):
+    steps = np.diff(plan.radii_deg) if len(plan.radii_deg) > 1 else [1.0]
+    return max(3.0, 3 * float(np.min(steps)))
+
+
+def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None) -> tuple[Table, Table]:
+    radii = np.asarray(plan.radii_deg)
+    c = plan.centres
+    c1, c2 = c[pool.i], c[pool.j]
+    rad = radii[pool.radius_index] if pool.s.size else np.zeros(0)
+    ctol = 2.5 * plan.grid_deg
+    rtol = radius_window(plan)
+    keep = suppress(c1, c2, rad, pool.s, ctol, rtol, limit=top + max(5, top // 5))
+    antipodal = plan.family == "antipodal"
+    rows = []
+    iterator = keep if progress is None else progress(keep, desc="refine", unit="cand")
+    for idx in iterator:
+        sense = int(pool.sense[idx])
+        ir = int(pool.radius_index[idx])
+        beta_ref = 2 * math.pi * pool.k[idx] / plan.nsamp[ir]
+        a, b, r, s_ref = c1[idx], c2[idx], float(rad[idx]), float(pool.s[idx])
+        if refine:
+            a, b, r, s_new, beta_new = refine_candidate(plan, a, b, r, sense, antipodal)
+            if s_new >= s_ref:
+                s_ref, beta_ref = s_new, beta_new
+            else:
+                a, b, r = c1[idx], c2[idx], float(rad[idx])
+        rows.append((a, b, r, s_ref, float(pool.s[idx]), sense, beta_ref))
+    if rows:
+        A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
+        R = np.array([x[2] for x in rows]); S = np.array([x[3] for x in rows])
+        again = suppress(A, B, R, S, ctol, rtol, limit=top)
+        rows = [rows[q] for q in again]
+    cand = candidate_table(rows)
+    return cand, peak_table(plan, pool)
+
+
+def candidate_table(rows) -> Table:
+    names = ["rank", "radius_deg", "lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg", "separation_deg",
+             "twist_deg", "flip", "s", "s_grid"]
+    if not rows:
+        return Table(names=names, dtype=[int, float, float, float, float, float, float, float, bool, float, float])
+    A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
+    flip = np.array([x[5] == 1 for x in rows])
+    beta = np.array([x[6] for x in rows])
+    tw = np.degrees(rings.twist_from_reference(beta, A, B, flip)) % 360.0
+    lon1, lat1 = rings.vec_to_lonlat(A)
+    lon2, lat2 = rings.vec_to_lonlat(B)
+    t = Table()
+    t["rank"] = np.arange(1, len(rows) + 1)
+    t["radius_deg"] = [x[2] for x in rows]
+    t["lon1_deg"], t["lat1_deg"], t["lon2_deg"], t["lat2_deg"] = lon1, lat1, lon2, lat2
+    t["separation_deg"] = rings.separation_deg(A, B)
+    t["twist_deg"] = tw
+    t["flip"] = flip
+    t["s"] = [x[3] for x in rows]
+    t["s_grid"] = [x[4] for x in rows]
+    for col in t.colnames:
+        if t[col].dtype.kind == "f":
+            t[col].info.format = ".6f"
+    return t
+
+
+def peak_table(plan: SearchPlan, pool: Pool) -> Table:
+    rows = []
+    for ir, r in enumerate(plan.radii_deg):
+        for sense in (0, 1):
+            s = pool.peak_s[ir, sense]
+            i, j, k = pool.peak_idx[ir, sense]
+            if not np.isfinite(s):
+                rows.append((r, bool(sense), np.nan, np.nan, np.nan, np.nan, np.nan, np.nan, np.nan))
+                continue
+            a, b = plan.centres[i], plan.centres[j]
+            tw = math.degrees(float(rings.twist_from_reference(2 * math.pi * k / plan.nsamp[ir], a, b, bool(sense))[0]))
+            lon1, lat1 = rings.vec_to_lonlat(a)
+            lon2, lat2 = rings.vec_to_lonlat(b)
+            rows.append((r, bool(sense), float(s), float(lon1), float(lat1), float(lon2), float(lat2),
+                         float(rings.separation_deg(a, b)), tw % 360.0))
+    t = Table(rows=rows, names=["radius_deg", "flip", "s", "lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg",
+                                "separation_deg", "twist_deg"],
+              dtype=[float, bool, float, float, float, float, float, float, float])
+    for col in t.colnames:
+        if t[col].dtype.kind == "f":
+            t[col].info.format = ".6f"
+    return t
+
+
+def run_search(prepared, scfg, compute=None, listed_table=None, runner=None, progress=None, key=""):
+    """The whole search on a prepared map: plan, scan every chunk, combine, finalize."""
+    plan = make_plan(prepared, scfg, compute, listed_table, key=key)
+    chunks = plan.chunk_ids()
+    if runner is None:
+        it = chunks if progress is None else progress(chunks, desc="scan", unit="chunk")
+        results = [scan_chunk(plan, ch) for ch in it]
+    else:
+        results = runner(plan, chunks)
+    pool = combine(plan, results)
+    cand, peaks = finalize(plan, pool, scfg.top, refine=scfg.refine, progress=progress)
+    return plan, pool, cand, peaks
