@@ -86,8 +86,9 @@ def ring_points(centre, radius_rad, nsamp, other=None, phase0=0.0):
     e1, e2 = phase_frame(c, other)
     phi = phase0 + 2 * np.pi * np.arange(nsamp) / nsamp
     ca, sa = np.cos(radius_rad), np.sin(radius_rad)
-    cp, sp = np.cos(phi), np.sin(phi)
-    return (ca * c[:, None, :] + sa * (cp[None, :, None] * e1[:, None, :] + sp[None, :, None] * e2[:, None, :]))
+    coords = np.stack([np.full(nsamp, ca), sa * np.cos(phi), sa * np.sin(phi)], axis=-1)   # (N, 3)
+    basis = np.stack([c, e1, e2], axis=1)                                                  # (n, 3, 3)
+    return np.matmul(coords[None, :, :], basis)
 
 
 def phase_of(points, centre, other=None):
@@ -119,9 +120,10 @@ def antipode_index(nside_centers):
 def synthesize_at(alm, lmax, vecs, nthreads=1, epsilon=1e-7):
     """Evaluate a real map with harmonic coefficients ``alm`` (healpy order) at unit vectors."""
     v = np.asarray(vecs, dtype=float).reshape(-1, 3)
-    theta = np.arccos(np.clip(v[:, 2], -1.0, 1.0))
-    phi = np.arctan2(v[:, 1], v[:, 0]) % (2 * np.pi)
-    loc = np.ascontiguousarray(np.stack([theta, phi], axis=-1))
+    loc = np.empty((v.shape[0], 2))
+    np.arccos(np.clip(v[:, 2], -1.0, 1.0), out=loc[:, 0])
+    np.arctan2(v[:, 1], v[:, 0], out=loc[:, 1])
+    loc[:, 1] %= 2 * np.pi
     a = np.ascontiguousarray(np.asarray(alm, dtype=np.complex128).reshape(1, -1))
     out = np.empty((1, v.shape[0]), dtype=np.float64)
     if v.shape[0] == 0:

@@ -435,8 +435,9 @@ def run_search(prepared, scfg, compute=None, listed_table=None, runner=None, pro
     plan = make_plan(prepared, scfg, compute, listed_table, key=key)
     chunks = plan.chunk_ids()
     if runner is None:
-        it = chunks if progress is None else progress(chunks, desc="scan", unit="chunk")
-        results = [scan_chunk(plan, ch) for ch in it]
+        from .execute import run_units
+
+        results = list(run_units(scan_chunk, plan, chunks, compute=compute, tag="scan", progress=progress).values())
     else:
         results = runner(plan, chunks)
     pool = combine(plan, results)

@@ -1,0 +1,87 @@
+"""The ``twinring`` command: one subcommand per stage.
+
+Each subcommand is one row of ``COMMANDS``: its name, one-line help, a function
+adding its arguments and the dotted path of its handler (imported only when the
+subcommand runs, so ``--help`` stays fast).  A handler takes the parsed
+arguments and returns an exit status.  Bad input of any kind is an
+:class:`~pipeline.config.InputError`, printed as one line on stderr with exit
+status 2 and no traceback.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+import time
+
+
+def _config_arg(p):
+    p.add_argument("config", help="YAML run config")
+    p.add_argument("--out", metavar="DIR", help="output directory (overrides output.dir)")
+    p.add_argument("--force", action="store_true", help="reuse an output directory made by a different config")
+
+
+def _shard_args(p):
+    _config_arg(p)
+    p.add_argument("--shard", metavar="K/N", help="run only shard K of N (K = 0 .. N-1) of the chunks")
+
+
+def _merge_args(p):
+    p.add_argument("dirs", nargs="+", metavar="DIR", help="shard output directories")
+    p.add_argument("--out", metavar="DIR", required=True, help="directory for the merged results")
+
+
+def _report_args(p):
+    p.add_argument("dir", metavar="DIR", help="a run directory")
+
+
+COMMANDS = [
+    ("search", "scan a map for matched circle pairs -> candidates.ecsv, peaks.ecsv", _shard_args,
+     "pipeline.stages:cmd_search"),
+    ("prepare", "prepare a map (dipole removal, band limit, beam) -> prepared.fits", _config_arg,
+     "pipeline.stages:cmd_prepare"),
+]
+
+
+def build_parser():
+    parser = argparse.ArgumentParser(
+        prog="twinring",
+        description="Matched-circle tests of the topology of space on HEALPix CMB maps.",
+    )
+    from . import results
+
+    parser.add_argument("--version", action="version", version=f"twinring {results.TOOL_VERSION}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+    for name, help_text, add_args, handler in COMMANDS:
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        add_args(p)
+        p.set_defaults(_handler=handler)
+    return parser
+
+
+def _resolve(dotted):
+    mod, _, fn = dotted.partition(":")
+    return getattr(importlib.import_module(mod), fn)
+
+
+def main(argv=None) -> int:
+    from .config import InputError
+
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    start = time.time()
+    try:
+        status = _resolve(args._handler)(args)
+    except InputError as exc:
+        print(f"twinring: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("twinring: interrupted; finished chunks are kept, rerun to resume", file=sys.stderr)
+        return 130
+    args._elapsed = time.time() - start
+    return int(status or 0)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

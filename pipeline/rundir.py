@@ -1,0 +1,122 @@
+"""Run directories: the resolved config, the log, progress bars and the closing summary.
+
+A run directory belongs to one config.  ``open_run`` writes the resolved
+config as ``config.yaml`` on first use and refuses a directory whose
+``config.yaml`` came from a different config (hash of every section) unless
+``force`` is given.  Nothing already in the directory is removed.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import resource
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import yaml
+
+from .config import InputError, RunConfig, dump_config
+from .results import write_text
+
+CONFIG_NAME = "config.yaml"
+LOG_NAME = "twinring.log"
+
+
+def peak_memory_mb() -> float:
+    """Peak resident memory of this process and its finished children (MB)."""
+    own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    return max(own, kids) / 1024.0
+
+
+@dataclass
+class Run:
+    dir: Path
+    cfg: RunConfig
+    stage: str
+    logger: logging.Logger
+    started: float = field(default_factory=time.time)
+
+    def log(self, msg, *args):
+        self.logger.info(msg, *args)
+
+    def progress(self, iterable, desc="", unit="it", total=None):
+        """A progress bar with ETA on stderr (hidden when stderr is not a terminal or progress is off)."""
+        from tqdm.auto import tqdm
+
+        disable = (not self.cfg.compute.progress) or None
+        return tqdm(iterable, desc=desc, unit=unit, total=total, disable=disable, file=sys.stderr,
+                    dynamic_ncols=True, leave=False)
+
+    def elapsed(self):
+        return time.time() - self.started
+
+    def finish(self, lines: list[str], extra: dict | None = None):
+        """Print the closing summary and log it."""
+        lines = list(lines) + [f"wall time {self.elapsed():.1f} s, peak memory {peak_memory_mb():.0f} MB",
+                               f"results in {self.dir}"]
+        for line in lines:
+            self.log(line)
+            print(line)
+
+
+def _logger(run_dir: Path, stage: str):
+    logger = logging.getLogger(f"twinring.{run_dir.resolve()}.{stage}")
+    logger.setLevel(logging.INFO)
+    logger.propagate = False
+    for h in list(logger.handlers):
+        logger.removeHandler(h)
+        h.close()
+    fh = logging.FileHandler(run_dir / LOG_NAME)
+    fh.setFormatter(logging.Formatter("%(asctime)s " + stage + ": %(message)s", "%Y-%m-%d %H:%M:%S"))
+    logger.addHandler(fh)
+    return logger
+
+
+def resolve_out(cfg: RunConfig, out_override=None) -> Path:
+    return Path(out_override or cfg.output.dir)
+
+
+def open_run(cfg: RunConfig, out_override=None, force=False, stage="") -> Run:
+    out = resolve_out(cfg, out_override)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out}: output.dir is a file; allowed: a directory")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"{out}: output.dir cannot be created ({exc.strerror or exc}); allowed: a writable directory")
+    probe = out / ".twinring-write-test"
+    try:
+        probe.write_text("")
+        probe.unlink()
+    except OSError as exc:
+        raise InputError(f"{out}: output.dir is not writable ({exc.strerror or exc}); allowed: a writable directory")
+    stored = out / CONFIG_NAME
+    text = "# resolved twinring config; config_hash: " + cfg.hash() + "\n" + dump_config(cfg)
+    if stored.exists():
+        old_hash = _stored_hash(stored)
+        if old_hash != cfg.hash() and not force:
+            raise InputError(
+                f"{out}: output directory holds results of another config (hash {old_hash}, this one {cfg.hash()});"
+                " allowed: a new --out directory, or --force"
+            )
+    if not stored.exists() or force:
+        write_text(stored, text)
+    return Run(out, cfg, stage, _logger(out, stage))
+
+
+def _stored_hash(path: Path) -> str:
+    first = path.read_text().splitlines()[:1]
+    if first and "config_hash:" in first[0]:
+        return first[0].split("config_hash:")[1].strip()
+    return "unknown"
+
+
+def write_json(path, data: dict):
+    write_text(path, json.dumps(data, indent=2, sort_keys=True, default=str) + "\n")
+
+
+def read_yaml(path):
+    return yaml.safe_load(Path(path).read_text())
