@@ -155,8 +155,13 @@ def _open_table(path, what):
         raise _bad(p, f"cannot read {what} file ({exc.strerror or exc})", "a readable HEALPix FITS file")
     if not head:
         raise _bad(p, f"{what} file is empty", "a HEALPix FITS file")
-    if not head.startswith(b"SIMPLE  =") and not head.startswith(b"\x1f\x8b"):
+    gz = head.startswith(b"\x1f\x8b")
+    if not head.startswith(b"SIMPLE  =") and not gz:
         raise _bad(p, f"{what} file is not FITS (no SIMPLE card at the start)", "a HEALPix FITS file")
+    size = p.stat().st_size
+    if not gz and size % 2880:
+        raise _bad(p, f"{what} file is truncated ({size} bytes, not a whole number of 2880-byte FITS blocks)",
+                   "a complete HEALPix FITS file")
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -227,14 +232,18 @@ def _read_column(path, what, field_index):
 
         # Order matters for memory: the column is viewed through the memory map
         # and copied to float64 exactly once.
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            raw = table.data.field(ci)
-            values = np.array(raw, dtype=np.float64, copy=True).reshape(-1)
-            del raw
-            pixels = None
-            if explicit:
-                pixels = np.array(table.data.field(pix_col), dtype=np.int64).reshape(-1)
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                raw = table.data.field(ci)
+                values = np.array(raw, dtype=np.float64, copy=True).reshape(-1)
+                del raw
+                pixels = None
+                if explicit:
+                    pixels = np.array(table.data.field(pix_col), dtype=np.int64).reshape(-1)
+        except (TypeError, ValueError, OSError, IndexError) as exc:
+            raise _bad(p, f"{what} table data cannot be read, file truncated or corrupt "
+                       f"({exc.__class__.__name__}: {exc})", "a complete HEALPix FITS file")
         n = values.size
 
         # --- HEALPix geometry
