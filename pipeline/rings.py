@@ -103,7 +103,9 @@ def samples_for(radius_rad, lmax, margin=8):
     """Samples per ring: about 2 (lmax sin(alpha) + margin), rounded up to a fast even FFT length."""
     m_top = int(np.ceil(lmax * np.sin(radius_rad))) + margin
     n = scipy.fft.next_fast_len(max(2 * m_top, 16), real=True)
-    return n + (n % 2)
+    while n % 2:
+        n = scipy.fft.next_fast_len(n + 1, real=True)
+    return n
 
 
 def center_grid(nside_centers):

@@ -113,15 +113,20 @@ def scan_pairs(r1: RingSpectra, i1, r2: RingSpectra, i2, min_valid_fraction=0.5,
     both_full = r1.full[i1] & r2.full[i2]
     fast = np.flatnonzero(both_full)
     slow = np.flatnonzero(~both_full)
+    rows = np.arange(SUB_BATCH)
     for lo in range(0, fast.size, SUB_BATCH):
         sel = fast[lo:lo + SUB_BATCH]
-        b1 = r1.b[i1[sel]]
-        b2 = r2.b[i2[sel]]
-        den = (r1.norm[i1[sel]] + r2.norm[i2[sel]]) / nsamp
-        den = np.where(den > 0, den, np.inf)
-        for sense, x in enumerate((np.conj(b1) * b2, b1 * b2)):
-            best, kk = _best(_irfft(x, nsamp, workers))
-            s[sense, sel] = best / den
+        a, c = i1[sel], i2[sel]
+        b1 = np.take(r1.b, a, axis=0)
+        b2 = np.take(r2.b, c, axis=0)
+        den = (r1.norm[a] + r2.norm[c]) / nsamp
+        den[den <= 0] = np.inf
+        x = np.multiply(b1, b2)                      # flip = True: a1 a2
+        np.conjugate(b1, out=b1)
+        for sense, prod in ((1, x), (0, np.multiply(b1, b2, out=b2))):   # flip = False: conj(a1) a2
+            corr = _irfft(prod, nsamp, workers)
+            kk = np.argmax(corr, axis=-1)
+            s[sense, sel] = corr[rows[: sel.size], kk] / den
             k[sense, sel] = kk
     if slow.size:
         _scan_masked(r1, i1, r2, i2, slow, s, k, min_valid_fraction, workers)
