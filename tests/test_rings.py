@@ -1,0 +1,112 @@
+"""Ring geometry and exact ring values against astropy and scipy.special."""
+import numpy as np
+import healpy as hp
+import pytest
+from astropy.coordinates import SkyCoord, CartesianRepresentation
+import astropy.units as u
+from scipy.special import sph_harm_y
+
+from pipeline import rings
+
+
+def test_samples_lie_at_the_radius_astropy():
+    # every sample lies at the requested angular distance from its centre (astropy separations, 1e-9 rad)
+    rng = np.random.default_rng(0)
+    centres = rings.unit(rng.normal(size=(30, 3)))
+    centres[0] = [0, 0, 1]          # a pole, where the phase reference switches to +x
+    for radius_deg in (5.0, 37.5, 90.0):
+        pts = rings.ring_points(centres, np.radians(radius_deg), 64)
+        c = SkyCoord(CartesianRepresentation(*np.repeat(centres[:, None, :], 64, 1).reshape(-1, 3).T), frame="icrs")
+        p = SkyCoord(CartesianRepresentation(*pts.reshape(-1, 3).T), frame="icrs")
+        sep = c.separation(p).to_value(u.rad)
+        np.testing.assert_allclose(sep, np.radians(radius_deg), atol=1e-9)
+
+
+def test_frames_share_handedness_and_origin_rules():
+    rng = np.random.default_rng(1)
+    c = rings.unit(rng.normal(size=(50, 3)))
+    e1, e2 = rings.phase_frame(c)
+    # right-handed about its own centre: e1 x e2 = c
+    np.testing.assert_allclose(np.cross(e1, e2), c, atol=1e-12)
+    # back-to-back origin: towards the north pole (e1 has the largest z of any unit tangent vector)
+    away = np.abs(c[:, 2]) < np.cos(np.radians(rings.POLE_CAP_DEG))
+    assert np.all(e1[away, 2] >= 0)
+    north = np.array([0, 0, 1.0]) - c[away, 2:3] * c[away]
+    np.testing.assert_allclose(e1[away], north / np.linalg.norm(north, axis=-1, keepdims=True), atol=1e-12)
+    # other pairs: the origin points to the other circle's centre
+    o = rings.unit(rng.normal(size=(50, 3)))
+    e1o, _ = rings.phase_frame(c, o)
+    proj = o - np.sum(o * c, -1, keepdims=True) * c
+    np.testing.assert_allclose(e1o, proj / np.linalg.norm(proj, axis=-1, keepdims=True), atol=1e-12)
+    # phase_of inverts ring_points
+    pts = rings.ring_points(c[:3], 0.6, 12, other=o[:3])
+    for n in range(3):
+        ph = rings.phase_of(pts[n], np.repeat(c[n:n + 1], 12, 0), o[n:n + 1])
+        np.testing.assert_allclose(ph, 2 * np.pi * np.arange(12) / 12, atol=1e-12)
+
+
+def test_translation_pairs_at_twist_zero_with_flip():
+    # A translation by d along n maps the circle about n onto the one about -n with reversed sense
+    # (Weeks, The Shape of Space): with our origins this is flip = True, twist 0 (DESIGN.md conventions).
+    rng = np.random.default_rng(2)
+    n = rings.unit(rng.normal(size=3))
+    alpha = 0.7
+    p = rings.ring_points(n, alpha, 24)[0]
+    q = p - 2 * np.cos(alpha) * n
+    ph2 = rings.phase_of(q, np.repeat(-n[None], 24, 0), n[None])
+    phi = 2 * np.pi * np.arange(24) / 24
+    np.testing.assert_allclose(np.angle(np.exp(1j * (ph2 - (0 - phi)))), 0, atol=1e-12)
+
+
+@pytest.mark.parametrize("ell,m", [(3, 0), (5, 2), (12, 7)])
+def test_ring_values_equal_spherical_harmonics(ell, m):
+    # a single-mode map: ring values equal the analytic real spherical harmonic (scipy.special)
+    lmax = 16
+    alm = np.zeros(hp.Alm.getsize(lmax), complex)
+    alm[hp.Alm.getidx(lmax, ell, m)] = 1.0 if m == 0 else 0.5 * (1 - 0.3j)
+    rng = np.random.default_rng(ell)
+    c = rings.unit(rng.normal(size=(4, 3)))
+    pts = rings.ring_points(c, np.radians(33.0), 40).reshape(-1, 3)
+    vals = rings.synthesize_at(alm, lmax, pts)
+    theta = np.arccos(pts[:, 2])
+    phi = np.arctan2(pts[:, 1], pts[:, 0])
+    y = sph_harm_y(ell, m, theta, phi)
+    a = alm[hp.Alm.getidx(lmax, ell, m)]
+    ref = (a * y).real if m == 0 else 2 * (a * y).real   # real map: a_lm Y_lm + conj
+    np.testing.assert_allclose(vals, ref, atol=1e-6)
+
+
+def test_ring_length_follows_band_limit():
+    # about 2 (lmax sin(alpha) + margin) samples, even, 5-smooth: small circles cost less (MATH.md section 3)
+    n_small = rings.samples_for(np.radians(10), 128)
+    n_big = rings.samples_for(np.radians(80), 128)
+    assert n_small < n_big
+    for a in (5, 10, 30, 53, 80, 90):
+        n = rings.samples_for(np.radians(a), 128, margin=8)
+        assert n % 2 == 0 and n >= 2 * (128 * np.sin(np.radians(a)) + 8)
+        f = n
+        for p in (2, 3, 5):
+            while f % p == 0:
+                f //= p
+        assert f == 1
+
+
+def test_antipodes_and_twist_conversion():
+    ai = rings.antipode_index(8)
+    v = rings.center_grid(8)
+    np.testing.assert_allclose(v[ai], -v, atol=1e-12)
+    # the twist measured in reference frames, converted, agrees with direct phases in pair frames
+    rng = np.random.default_rng(4)
+    c1, c2 = rings.unit(rng.normal(size=(2, 3)))
+    alpha, beta_ref, nsamp = 0.5, 1.1, 90
+    phi = 2 * np.pi * np.arange(nsamp) / nsamp
+    for flip in (False, True):
+        ph2 = beta_ref - phi if flip else beta_ref + phi
+        e1, e2 = rings.phase_frame(c2[None])
+        p2 = np.cos(alpha) * c2 + np.sin(alpha) * (np.cos(ph2)[:, None] * e1 + np.sin(ph2)[:, None] * e2)
+        p1 = rings.ring_points(c1, alpha, nsamp)[0]
+        q1 = rings.phase_of(p1, np.repeat(c1[None], nsamp, 0), c2[None])
+        q2 = rings.phase_of(p2, np.repeat(c2[None], nsamp, 0), c1[None])
+        tw = rings.twist_from_reference(beta_ref, c1, c2, flip)
+        pred = (tw - q1) if flip else (tw + q1)
+        np.testing.assert_allclose(np.angle(np.exp(1j * (pred - q2))), 0, atol=1e-10)
