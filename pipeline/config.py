@@ -126,12 +126,77 @@ class ComputeSection:
         pass
 
 
+@dataclass(frozen=True)
+class TopologySection:
+    """The flat space (see pipeline/topology/manifolds.py for each space's lengths)."""
+    space: str = _f("E1", "str", choices=tuple(f"E{i}" for i in range(1, 19)))
+    lengths: tuple = _f((1.2, 1.2, 1.2), "floats")
+    angles_deg: tuple | None = _f(None, "floats?")
+    units: str = _f("chi", "str", choices=("chi", "Gpc"))
+    observer: tuple = _f((0.0, 0.0, 0.0), "floats", length=3)
+    euler_deg: tuple = _f((0.0, 0.0, 0.0), "floats", length=3)
+
+    def check(self, where):
+        from .topology.manifolds import ParamError, check_params
+
+        try:
+            check_params(self.space, self.lengths, self.angles_deg, self.observer, self.euler_deg)
+        except ParamError as exc:
+            raise where(exc.key, exc.found, exc.allowed)
+
+
+@dataclass(frozen=True)
+class SkySection:
+    """Synthetic skies of the configured topology (maps in uK, HEALPix RING)."""
+    nside: int = _f(64, "int", min=1, max=8192, pow2=True)
+    lmax: int = _f(128, "int", min=2)
+    lmin: int = _f(2, "int", min=0)
+    fwhm_deg: float = _f(3.0, "float", min=0.0, max=180.0)
+    physics: str = _f("sw", "str", choices=("sw", "full"))
+    seed: int = _f(5, "int", min=0)
+    noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
+    mask: str = _f("none", "str", choices=("none", "demo"))
+    mask_band_deg: float = _f(12.0, "float", min=0.0, max=60.0)
+    mask_holes: int = _f(30, "int", min=0, max=100000)
+    mask_hole_deg: float = _f(1.5, "float", min=0.0, max=20.0, open_min=True)
+    kmax_factor: float = _f(2.0, "float", min=1.0, max=10.0)
+    open_length_chi: float = _f(4.0, "float", min=2.0, max=100.0, open_min=True)
+
+    def check(self, where):
+        if self.lmax > 3 * self.nside - 1:
+            raise where("lmax", self.lmax, f"at most 3*nside-1 = {3 * self.nside - 1} for nside {self.nside}")
+        if self.lmin >= self.lmax:
+            raise where("lmin", self.lmin, f"below lmax = {self.lmax}")
+
+
+@dataclass(frozen=True)
+class CosmologySection:
+    """Background and primordial parameters (defaults: Planck 2018, as astropy's Planck18)."""
+    h0: float = _f(67.66, "float", min=20.0, max=150.0)
+    ombh2: float = _f(0.02242, "float", min=0.001, max=0.1)
+    omch2: float = _f(0.11933, "float", min=0.001, max=0.9)
+    mnu: float = _f(0.06, "float", min=0.0, max=3.0)
+    neff: float = _f(3.046, "float", min=0.0, max=10.0)
+    tcmb: float = _f(2.7255, "float", min=0.1, max=10.0)
+    tau: float = _f(0.0561, "float", min=0.0, max=0.5)
+    a_s: float = _f(2.105e-9, "float", min=0.0, max=1e-6, open_min=True)
+    n_s: float = _f(0.9665, "float", min=0.5, max=1.5)
+    pivot_mpc: float = _f(0.05, "float", min=1e-5, max=10.0)
+    z_ls: float = _f(1089.92, "float", min=10.0, max=1e5)
+
+    def check(self, where):
+        pass
+
+
 SECTIONS = {
     "map": MapSection,
     "prepare": PrepareSection,
     "search": SearchSection,
     "output": OutputSection,
     "compute": ComputeSection,
+    "topology": TopologySection,
+    "sky": SkySection,
+    "cosmology": CosmologySection,
 }
 
 
@@ -142,6 +207,9 @@ class RunConfig:
     search: SearchSection = field(default_factory=SearchSection)
     output: OutputSection = field(default_factory=OutputSection)
     compute: ComputeSection = field(default_factory=ComputeSection)
+    topology: TopologySection = field(default_factory=TopologySection)
+    sky: SkySection = field(default_factory=SkySection)
+    cosmology: CosmologySection = field(default_factory=CosmologySection)
     source: str = ""          # the file the config came from (not a YAML key)
     present: tuple = ()       # the sections the YAML file named
 
