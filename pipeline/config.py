@@ -188,6 +188,73 @@ class CosmologySection:
         pass
 
 
+@dataclass(frozen=True)
+class CalibrateSection:
+    """Isotropic Gaussian simulations through the identical prepare + search (pipeline/calibrate.py)."""
+    simulations: int = _f(40, "int", min=2, max=1000000)
+    spectrum: str = _f("data", "str", choices=("data", "theory", "file"))
+    spectrum_file: str | None = _f(None, "path?")
+    false_alarm: tuple = _f((0.01, 0.05), "floats")
+    seed: int = _f(7, "int", min=0)
+    noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
+    tail: str = _f("gumbel", "str", choices=("gumbel", "genextreme"))
+    sim_nside: int = _f(0, "int", min=0, max=8192)
+
+    def check(self, where):
+        if not self.false_alarm or not all(0.0 < a < 1.0 for a in self.false_alarm):
+            raise where("false_alarm", list(self.false_alarm), "a list of rates, each in (0, 1)")
+        if self.spectrum == "file" and not self.spectrum_file:
+            raise where("spectrum_file", None, "a table of l, C_l [uK^2] when spectrum is 'file'")
+        if self.sim_nside and not is_pow2(self.sim_nside):
+            raise where("sim_nside", self.sim_nside, "0 (the input map's Nside) or a power of two")
+
+
+@dataclass(frozen=True)
+class InjectSection:
+    """Injection-recovery campaigns (pipeline/inject.py); the space's shape comes from ``topology``."""
+    sizes: tuple = _f((), "floats")
+    radii_deg: tuple = _f((30.0, 40.0, 50.0, 60.0, 70.0), "floats")
+    realizations: int = _f(3, "int", min=1, max=100000)
+    seed: int = _f(11, "int", min=0)
+    mode: str = _f("targeted", "str", choices=("targeted", "full"))
+    false_alarm: float = _f(0.01, "float", min=0.0, max=1.0, open_min=True)
+    threshold: str = _f("global", "str", choices=("global", "local"))
+    radius_tol_deg: float = _f(2.0, "float", min=0.0, max=45.0)
+    centre_tol_deg: float = _f(0.0, "float", min=0.0, max=90.0)
+    noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
+    random_orientation: bool = _f(True, "bool")
+    physics: str | None = _f(None, "str?", choices=("sw", "full"))
+
+    def check(self, where):
+        if not self.sizes and not self.radii_deg:
+            raise where("sizes", [], "a list of sizes (chi) or inject.radii_deg")
+        if not all(x > 0 for x in self.sizes):
+            raise where("sizes", list(self.sizes), "sizes > 0 in units of chi")
+        if not all(0 < r < 90 for r in self.radii_deg):
+            raise where("radii_deg", list(self.radii_deg), "radii in (0, 90) degrees")
+
+
+@dataclass(frozen=True)
+class BoundSection:
+    """Smallest detectable radius -> lower bound on the size of space (pipeline/bound.py)."""
+    recovery: float = _f(0.95, "float", min=0.0, max=1.0, open_min=True)
+    false_alarm: float = _f(0.01, "float", min=0.0, max=1.0, open_min=True)
+    chi_gpc: float | None = _f(None, "float?", min=0.0, open_min=True)
+
+    def check(self, where):
+        pass
+
+
+@dataclass(frozen=True)
+class ReportSection:
+    """Figures and summary (pipeline/report.py)."""
+    circles: int = _f(3, "int", min=0, max=50)
+    dpi: int = _f(110, "int", min=40, max=600)
+
+    def check(self, where):
+        pass
+
+
 SECTIONS = {
     "map": MapSection,
     "prepare": PrepareSection,
@@ -197,6 +264,10 @@ SECTIONS = {
     "topology": TopologySection,
     "sky": SkySection,
     "cosmology": CosmologySection,
+    "calibrate": CalibrateSection,
+    "inject": InjectSection,
+    "bound": BoundSection,
+    "report": ReportSection,
 }
 
 
@@ -210,6 +281,10 @@ class RunConfig:
     topology: TopologySection = field(default_factory=TopologySection)
     sky: SkySection = field(default_factory=SkySection)
     cosmology: CosmologySection = field(default_factory=CosmologySection)
+    calibrate: CalibrateSection = field(default_factory=CalibrateSection)
+    inject: InjectSection = field(default_factory=InjectSection)
+    bound: BoundSection = field(default_factory=BoundSection)
+    report: ReportSection = field(default_factory=ReportSection)
     source: str = ""          # the file the config came from (not a YAML key)
     present: tuple = ()       # the sections the YAML file named
 
