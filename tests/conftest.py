@@ -29,7 +29,7 @@ def periodic_field_on_sphere(lengths, nside, kmax, seed, rotation=None, observer
     nx, ny, nz = np.meshgrid(*g, indexing="ij")
     kx, ky, kz = 2 * np.pi * nx / L[0], 2 * np.pi * ny / L[1], 2 * np.pi * nz / L[2]
     k = np.sqrt(kx**2 + ky**2 + kz**2)
-    amp = np.where((k > 0) & (k <= kmax), k ** -1.5, 0.0)
+    amp = np.where((k > 0) & (k <= kmax), np.maximum(k, 1e-30) ** -1.5, 0.0)
     c = (rng.normal(size=k.shape) + 1j * rng.normal(size=k.shape)) * amp
     c = 0.5 * (c + np.conj(c[::-1, ::-1, ::-1]))          # real field
     if half_turn:

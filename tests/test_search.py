@@ -1,0 +1,142 @@
+"""The search finds the circles that geometry predicts, and only those.
+
+Where circles lie: Cornish, Spergel & Starkman 1998 (CQG 15, 2657): an image of the observer at
+distance d gives a circle pair of radius alpha with cos(alpha) = d / (2 chi), centres along the
+image directions; a cubic torus of side L has three face pairs (d = L) and six edge pairs
+(d = L sqrt 2).  Translations traverse the two circles in opposite senses (Weeks, The Shape of
+Space), flip = True in our convention.
+"""
+import math
+
+import numpy as np
+import healpy as hp
+import pytest
+import yaml
+from astropy.table import Table
+
+from pipeline import cli, rings, search
+from pipeline.config import SearchSection
+from conftest import periodic_field_on_sphere, prepared_from_map
+
+L_TORUS = 1.2
+FACE_DEG = math.degrees(math.acos(L_TORUS / 2))                 # 53.13
+EDGE_DEG = math.degrees(math.acos(L_TORUS * math.sqrt(2) / 2))  # 31.95
+
+
+def torus_directions():
+    faces = np.eye(3)
+    edges = np.array([[1, 1, 0], [1, -1, 0], [1, 0, 1], [1, 0, -1], [0, 1, 1], [0, 1, -1]]) / math.sqrt(2)
+    return faces, edges
+
+
+def match_pair(row, directions, tol_deg):
+    """Index of the +/- direction pair this candidate's centres sit on, or -1."""
+    c1 = rings.lonlat_to_vec(row["lon1_deg"], row["lat1_deg"])
+    c2 = rings.lonlat_to_vec(row["lon2_deg"], row["lat2_deg"])
+    for n, d in enumerate(directions):
+        for s in (1, -1):
+            if rings.separation_deg(c1, s * d) < tol_deg and rings.separation_deg(c2, -s * d) < tol_deg:
+                return n
+    return -1
+
+
+@pytest.fixture(scope="module")
+def torus_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("torus")
+    m = periodic_field_on_sphere((L_TORUS,) * 3, 64, kmax=140, seed=11)
+    hp.write_map(str(tmp / "sky.fits"), m, column_units="uK", overwrite=True, dtype=np.float64)
+    cfg = {
+        "map": {"path": "sky.fits"},
+        "prepare": {"nside": 64, "fwhm_deg": 3.0, "lmax": 128},
+        "search": {"family": "antipodal", "nside_centers": 32, "radius_deg": [25, 80, 1], "top": 20},
+        "output": {"dir": str(tmp / "out")},
+        "compute": {"progress": False},
+    }
+    (tmp / "run.yaml").write_text(yaml.safe_dump(cfg))
+    status = cli.main(["search", str(tmp / "run.yaml")])
+    assert status == 0
+    return tmp
+
+
+def test_torus_face_and_edge_pairs_lead_the_table(torus_run):
+    cand = Table.read(torus_run / "out" / "candidates.ecsv")
+    faces, edges = torus_directions()
+    top = cand[:9]
+    face_hits = [match_pair(r, faces, 3.0) for r in top]
+    edge_hits = [match_pair(r, edges, 3.0) for r in top]
+    # the three face pairs and the six edge pairs are the top nine, each exactly once
+    assert sorted(h for h in face_hits if h >= 0) == [0, 1, 2]
+    assert sorted(h for h in edge_hits if h >= 0) == [0, 1, 2, 3, 4, 5]
+    for r, f, e in zip(top, face_hits, edge_hits):
+        expected = FACE_DEG if f >= 0 else EDGE_DEG
+        assert r["radius_deg"] == pytest.approx(expected, abs=1.0)
+        assert bool(r["flip"]) is True
+        assert min(r["twist_deg"], 360 - r["twist_deg"]) < 3.0   # translation: twist 0
+        assert r["s"] > 0.85
+        assert r["separation_deg"] == pytest.approx(180.0, abs=1e-6)
+    # the next one down is far weaker
+    assert cand[9]["s"] < top["s"].min() - 0.1
+    # provenance travels with the table
+    assert cand.meta["tool"] == "twinring" and "config_hash" in cand.meta and "sha256_map" in cand.meta
+
+
+def test_peaks_table_and_fits_twin(torus_run):
+    peaks = Table.read(torus_run / "out" / "peaks.ecsv")
+    assert len(peaks) == 2 * 56
+    flip_true = peaks[peaks["flip"]]
+    best = flip_true[np.argmax(flip_true["s"])]
+    assert best["radius_deg"] in (52.0, 53.0, 54.0, 31.0, 32.0, 33.0)
+    twin = Table.read(torus_run / "out" / "candidates.fits")
+    np.testing.assert_allclose(twin["s"], Table.read(torus_run / "out" / "candidates.ecsv")["s"], atol=1e-6)
+
+
+def test_rerun_on_same_dir_keeps_results_and_other_config_is_refused(torus_run, capsys):
+    out = torus_run / "out"
+    before = (out / "candidates.ecsv").read_text()
+    cfg = yaml.safe_load((torus_run / "run.yaml").read_text())
+    cfg["search"]["top"] = 5
+    (torus_run / "other.yaml").write_text(yaml.safe_dump(cfg))
+    assert cli.main(["search", str(torus_run / "other.yaml")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "another config" in err[0] and "--force" in err[0]
+    assert (out / "candidates.ecsv").read_text() == before
+
+
+def test_gaussian_sky_stays_below_torus_faces(torus_sky):
+    # an isotropic Gaussian sky (healpy.synfast, flat l(l+1)C_l as Sachs-Wolfe predicts for n_s = 1,
+    # Sachs & Wolfe 1967) searched at radii >= 45 deg stays clearly below the torus's face pairs
+    lmax = 128
+    ell = np.arange(lmax + 1)
+    cl = np.where(ell >= 2, 1.0 / np.maximum(ell * (ell + 1), 1), 0.0)
+    np.random.seed(21)
+    g = hp.synfast(cl, 64, lmax=lmax)
+    gauss = prepared_from_map(g / g.std() * 30, lmax, 3.0)
+    sc = SearchSection(family="antipodal", nside_centers=32, radius_deg=(45.0, 79.0, 2.0), top=5, refine=False)
+    _, pool_g, cand_g, _ = search.run_search(gauss, sc)
+    _, pool_t, cand_t, _ = search.run_search(torus_sky, sc)
+    face_s = np.sort(cand_t["s"])[::-1][:3]
+    assert cand_g["s"].max() < face_s.min() - 0.1
+
+
+def test_general_search_finds_half_turn_pair_off_axis():
+    # E2 with translations 2.5 along x and y and a half turn about z with translation 1.2 along z,
+    # seen from (0.3, 0, 0): g x0 - x0 = (-0.6, 0, 1.2), d = 1.342, so alpha = 47.87 deg and the
+    # centres (-0.6, 0, +-1.2)/d lie 126.87 deg apart (CSS 1998 geometry); a half turn is a screw
+    # motion, flip = True (Weeks).
+    m = periodic_field_on_sphere((2.5, 2.5, 2.4), 64, kmax=140, seed=4, observer=(0.3, 0, 0), half_turn=True)
+    p = prepared_from_map(m, 128, 3.0)
+    sc = SearchSection(family="general", nside_centers=16, radius_deg=(40.0, 56.0, 1.0),
+                       separation_deg=(120.0, 135.0), top=5)
+    _, pool, cand, _ = search.run_search(p, sc)
+    best = cand[0]
+    c1 = rings.unit(np.array([-0.6, 0, 1.2]))
+    c2 = rings.unit(np.array([-0.6, 0, -1.2]))
+    got1 = rings.lonlat_to_vec(best["lon1_deg"], best["lat1_deg"])
+    got2 = rings.lonlat_to_vec(best["lon2_deg"], best["lat2_deg"])
+    d_direct = max(rings.separation_deg(got1, c1), rings.separation_deg(got2, c2))
+    d_swapped = max(rings.separation_deg(got1, c2), rings.separation_deg(got2, c1))
+    assert min(d_direct, d_swapped) < 3.0
+    assert best["radius_deg"] == pytest.approx(47.87, abs=1.0)
+    assert best["separation_deg"] == pytest.approx(126.87, abs=2.0)
+    assert bool(best["flip"]) is True
+    assert best["s"] > 0.85 and best["s"] > cand[1]["s"] + 0.1
