@@ -65,7 +65,20 @@ class Prepared:
 
 
 # --------------------------------------------------------------------------- pure functions
-def fit_monopole_dipole(values, mask, nest=False):
+def _pixel_vectors(nside, nest=False):
+    """A function ``(start, stop) -> (x, y, z)`` of pixel-centre unit vectors (ducc0.healpix)."""
+    import ducc0
+
+    base = ducc0.healpix.Healpix_Base(int(nside), "NEST" if nest else "RING")
+
+    def vecs(pix, nthreads=1):
+        v = base.pix2vec(np.asarray(pix, dtype=np.int64), nthreads=max(1, int(nthreads)))
+        return v[:, 0], v[:, 1], v[:, 2]
+
+    return vecs
+
+
+def fit_monopole_dipole(values, mask, nest=False, nthreads=1):
     """Least-squares monopole + dipole on pixels with ``mask > 0``: returns (mono, dx, dy, dz).
 
     The model is ``T(n) = mono + d . n`` with ``n`` the pixel-centre unit vector.
@@ -75,14 +88,14 @@ def fit_monopole_dipole(values, mask, nest=False):
     values = np.asarray(values)
     mask = np.asarray(mask)
     npix = values.size
-    nside = hp.npix2nside(npix)
+    vecs = _pixel_vectors(hp.npix2nside(npix), nest)
     ata = np.zeros((4, 4))
     atb = np.zeros(4)
     for s in range(0, npix, _CHUNK):
         sel = np.flatnonzero(mask[s:s + _CHUNK] > 0) + s
         if sel.size == 0:
             continue
-        x, y, z = hp.pix2vec(nside, sel, nest=nest)
+        x, y, z = vecs(sel, nthreads)
         t = values[sel]
         basis = np.stack([np.ones_like(x), x, y, z])
         ata += basis @ basis.T
@@ -94,7 +107,7 @@ def fit_monopole_dipole(values, mask, nest=False):
     return tuple(float(c) for c in coeffs)
 
 
-def remove_monopole_dipole(values, mask, nest=False):
+def remove_monopole_dipole(values, mask, nest=False, nthreads=1):
     """Subtract the monopole and dipole fitted on the unmasked pixels.
 
     Returns ``(cleaned, (mono, dx, dy, dz))``; ``cleaned`` is a new array, 0 where
@@ -102,13 +115,13 @@ def remove_monopole_dipole(values, mask, nest=False):
     """
     values = np.asarray(values, dtype=np.float64)
     mask = np.asarray(mask)
-    coeffs = fit_monopole_dipole(values, mask, nest=nest)
+    coeffs = fit_monopole_dipole(values, mask, nest=nest, nthreads=nthreads)
     mono, dx, dy, dz = coeffs
-    nside = hp.npix2nside(values.size)
+    vecs = _pixel_vectors(hp.npix2nside(values.size), nest)
     cleaned = np.empty_like(values)
     for s in range(0, values.size, _CHUNK):
         e = min(s + _CHUNK, values.size)
-        x, y, z = hp.pix2vec(nside, np.arange(s, e), nest=nest)
+        x, y, z = vecs(np.arange(s, e), nthreads)
         blk = values[s:e] - (mono + dx * x + dy * y + dz * z)
         blk *= mask[s:e] > 0
         cleaned[s:e] = blk
@@ -151,8 +164,8 @@ def map_to_alm(values, lmax, iterations=3):
 def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
 
-    ``nthreads`` is accepted for symmetry with the other stages; healpy's
-    transforms use OpenMP and follow ``OMP_NUM_THREADS``.
+    ``nthreads`` is used for the pixel geometry (ducc0); healpy's transforms
+    use OpenMP and follow ``OMP_NUM_THREADS``.
     """
     nside_in = sky.nside
     lmax = int(prep.lmax)
@@ -176,7 +189,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
 
     dipole = None
     if prep.remove_dipole:
-        cleaned, dipole = remove_monopole_dipole(sky.values, sky.mask)
+        cleaned, dipole = remove_monopole_dipole(sky.values, sky.mask, nthreads=nthreads)
         notes.append("monopole {:.4g} uK and dipole ({:.4g}, {:.4g}, {:.4g}) uK removed on the unmasked sky"
                      .format(*dipole))
     else:

@@ -376,8 +376,7 @@ def load_map(path, field=0, mask_path=None, mask_field=0, mask_threshold=0.5) ->
             raise _bad(mp, f"mask COORDSYS {str(minfo['coordsys_raw']).strip()!r} differs from the map's "
                        f"{str(info['coordsys_raw']).strip()!r} ({p.name})", "a mask in the same frame as the map")
         if frame is None and mframe is not None:
-            notes.append(f"{mp.name}: mask declares frame {mframe}, the map none; the map's frame taken as {mframe}")
-            frame = mframe
+            notes.append(f"{mp.name}: mask declares frame {mframe}, the map declares none")
         mbad = _bad_pixels(mvals)
         if mvalid is not None:
             mbad |= ~mvalid

@@ -170,6 +170,19 @@ def test_mask_nested_other_nside_is_regridded_with_note(tmp_path):
     assert s.mask_path == str(mf) and s.mask_checksum
 
 
+def test_nested_mask_same_nside_equals_ring_mask(tmp_path):
+    # mask and map in different orderings: the mask is reordered (healpy.reorder reference), not refused
+    m = sky()
+    mk = (np.random.default_rng(6).random(m.size) > 0.5).astype(float)
+    f = hp_write(tmp_path / "m.fits", m, dtype=np.float64)
+    ring = hp_write(tmp_path / "ring.fits", mk, dtype=np.float64)
+    nest = hp_write(tmp_path / "nest.fits", hp.reorder(mk, r2n=True), nest=True, dtype=np.float64)
+    a, b = load_map(f, mask_path=ring), load_map(f, mask_path=nest)
+    np.testing.assert_array_equal(a.mask, mk)
+    np.testing.assert_array_equal(b.mask, mk)
+    np.testing.assert_array_equal(b.values, m * mk)
+
+
 def test_mask_threshold_applies_to_fractional_mask(tmp_path):
     m = sky()
     w = np.linspace(0, 1, m.size)                  # apodised-like mask values
