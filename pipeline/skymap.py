@@ -140,12 +140,12 @@ def _is_pow2(n):
 
 
 def _open_table(path, what):
-    """Open ``path`` and return (hdulist, table HDU, merged header getter)."""
+    """Open ``path`` (memory-mapped) and return (hdulist, first binary-table HDU)."""
     from astropy.io import fits
 
     p = Path(path)
     if not p.exists():
-        raise _bad(p, f"{what} file not found", f"an existing HEALPix FITS file")
+        raise _bad(p, f"{what} file not found", "an existing HEALPix FITS file")
     if p.is_dir():
         raise _bad(p, f"{what} path is a directory", "a HEALPix FITS file")
     try:
