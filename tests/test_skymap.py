@@ -13,7 +13,7 @@ import pytest
 from astropy.io import fits
 
 from pipeline.config import InputError
-from pipeline.skymap import load_map, write_map, SkyMap
+from pipeline.skymap import load_map, write_map
 
 
 def sky(nside=16, seed=0):
