@@ -29,6 +29,7 @@ def _shard_args(p):
 def _merge_args(p):
     p.add_argument("dirs", nargs="+", metavar="DIR", help="shard output directories")
     p.add_argument("--out", metavar="DIR", required=True, help="directory for the merged results")
+    p.add_argument("--force", action="store_true", help="reuse an output directory made by a different config")
 
 
 def _report_args(p):
@@ -38,6 +39,8 @@ def _report_args(p):
 COMMANDS = [
     ("search", "scan a map for matched circle pairs -> candidates.ecsv, peaks.ecsv", _shard_args,
      "pipeline.stages:cmd_search"),
+    ("merge", "combine the output dirs of `search --shard K/N` runs into the tables of one run", _merge_args,
+     "pipeline.stages:cmd_merge"),
     ("prepare", "prepare a map (dipole removal, band limit, beam) -> prepared.fits", _config_arg,
      "pipeline.stages:cmd_prepare"),
 ]

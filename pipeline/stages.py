@@ -25,15 +25,26 @@ def input_files(cfg):
     return {"map": cfg.map.path, "mask": cfg.map.mask, "listed": cfg.search.listed}
 
 
-def prepared_for(cfg, run):
-    """The prepared map: from the config's map (written as prepared.fits in the run dir)."""
-    if not cfg.map.path:
-        raise InputError(f"{cfg.source}: map.path: found null; allowed: a HEALPix FITS file")
-    prepared = prep_mod.load_and_prepare(cfg)
+def prepared_for(cfg, run, prepared=None):
+    """The prepared map: from the config's map (written as prepared.fits in the run dir).
+
+    ``prepared``: an already prepared map (loaded before the run dir was opened) to log and write.
+    """
+    if prepared is None:
+        prepared = load_inputs(cfg)
     for note in getattr(prepared, "notes", ()):
         run.log(note)
     path = prep_mod.write_prepared(prepared, run.dir, provenance(cfg, input_files(cfg), "prepare"))
     run.log(f"prepared map written to {path}")
+    return prepared
+
+
+def load_inputs(cfg):
+    """Read and prepare the config's map (and check a listed-pairs table) before any output is written."""
+    if not cfg.map.path:
+        raise InputError(f"{cfg.source}: map.path: found null; allowed: a HEALPix FITS file")
+    prepared = prep_mod.load_and_prepare(cfg)
+    listed_pairs(cfg)
     return prepared
 
 
@@ -85,10 +96,31 @@ def summary_lines(cand, pool, plan):
 
 
 def cmd_search(args):
+    """Search; chunks are kept in the run dir (rerun resumes); ``--shard K/N`` scans one shard only."""
+    from . import merge as merge_mod
+    from .execute import parse_shard
+
     cfg = load_run_config(args)
+    shard = parse_shard(getattr(args, "shard", None))
+    prepared = load_inputs(cfg)                 # bad inputs fail before the output dir is touched
     run = open_run(cfg, args.out, args.force, "search")
-    prepared = prepared_for(cfg, run)
-    plan, pool, cand, peaks = search_prepared(cfg, run, prepared)
-    lines = summary_lines(cand, pool, plan)
+    prepared_for(cfg, run, prepared)
+    if shard is not None:
+        plan, res = merge_mod.search_shard(cfg, run, prepared, shard, listed_pairs(cfg))
+        run.finish([f"shard {shard[0]}/{shard[1]}: {len(res)} of {len(plan.chunk_ids())} chunks scanned; "
+                    "combine all shards with `twinring merge`", res.stats.line()])
+        return 0
+    stats = []
+    plan, pool, cand, peaks = search_prepared(cfg, run, prepared, runner=merge_mod.chunk_runner(cfg, run, stats))
+    lines = summary_lines(cand, pool, plan) + [s.line() for s in stats]
     run.finish(lines)
+    return 0
+
+
+def cmd_merge(args):
+    """Combine finished shard directories into the tables of an unsplit run."""
+    from . import merge as merge_mod
+
+    run, plan, pool, cand, peaks = merge_mod.merge_shards(args.dirs, args.out, getattr(args, "force", False))
+    run.finish(summary_lines(cand, pool, plan))
     return 0
