@@ -41,6 +41,9 @@ def atomic_path(path):
     except OSError as exc:
         raise InputError(f"{path.parent}: output directory is not writable ({exc.strerror or exc})")
     os.close(fd)
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(tmp, 0o666 & ~umask)   # mkstemp makes 0600 files; results are meant to be shared
     try:
         yield Path(tmp)
         with open(tmp, "rb+") as fh:
