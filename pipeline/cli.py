@@ -43,6 +43,11 @@ COMMANDS = [
      "pipeline.stages:cmd_merge"),
     ("prepare", "prepare a map (dipole removal, band limit, beam) -> prepared.fits", _config_arg,
      "pipeline.stages:cmd_prepare"),
+    ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _config_arg, "pipeline.calibrate:cmd_calibrate"),
+    ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "pipeline.inject:cmd_inject"),
+    ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "pipeline.bound:cmd_bound"),
+    ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "pipeline.report:cmd_report"),
+    ("run", "every configured stage in order into one directory (unchanged stages skipped)", _config_arg, "pipeline.workflow:cmd_run"),
 ]
 
 

@@ -1,0 +1,566 @@
+"""Calibration: isotropic Gaussian skies through the identical prepare and search.
+
+Each simulation is a statistically isotropic Gaussian sky with the configured
+spectrum, plus white noise, masked by the data's mask, prepared with the
+data's ``prepare`` section (monopole/dipole removal, band limit, beam) and
+scanned with the data's ``search`` section.  From every simulation we keep the
+*grid* peak of S at each radius and sense (``pool.peak_s``: the best S over
+every centre pair and twist on the search grid, no off-grid refinement).  The
+data are compared on the same footing: peaks by their grid S, candidates by
+their ``s_grid`` column (the S of the grid pair the candidate was refined
+from), never by the refined ``s``.
+
+Null distribution and p-values
+------------------------------
+For radius r and sense f let M_rf be the simulations' peak S (N values).
+
+* Local: ``p_local(s) = P(M_rf >= s)``.  With k simulations at or above s, it is
+  (k + 1) / (N + 1) when k >= ``EMPIRICAL_MIN``; beyond that the tail comes
+  from an extreme-value fit (Gumbel by default, ``calibrate.tail``) to the
+  N values.  Thresholds at false-alarm rate a are empirical quantiles when
+  a N >= ``EMPIRICAL_MIN`` and the fit's inverse survival function otherwise.
+* Global (look-elsewhere over all radii and both senses): each peak is
+  standardised, z = (M_rf - mu_rf) / sigma_rf with the simulations' mean and
+  standard deviation; the global statistic of a sky is Z = max over r and f of
+  z.  ``p_global`` of a peak or candidate is P(Z_null >= its z), with the same
+  empirical / extreme-value rule applied to the N values of Z.  The global
+  threshold in S at (r, f) is mu_rf + sigma_rf z_a.
+* The goodness of every fit is a Kolmogorov-Smirnov test (scipy.stats.kstest)
+  of the N values against the fitted law; its p-value is optimistic because the
+  parameters were fitted to the same values (Lilliefors), so read it as a
+  screen for a clearly wrong tail, not as a calibrated test.
+
+Spectra (``calibrate.spectrum``)
+--------------------------------
+* ``data``: pseudo-C_l of the prepared data map (masked, ``healpy.anafast``)
+  divided by f_sky and by the beam and high-pass window of ``prepare``, so that
+  the prepare step puts them back.  The data's noise is part of this spectrum:
+  leave ``calibrate.noise_uk_arcmin`` at 0 unless the noise must be added on
+  top.  The f_sky correction ignores mode coupling by the mask.
+* ``theory``: CAMB's TT spectrum of the ``cosmology`` section (pipeline.cosmology).
+* ``file``: a table with columns l and C_l in uK^2 (ECSV/FITS with columns
+  named ``l``/``ell`` and ``cl``/``c_l``/``C_l``/``tt``, or two plain-text columns).
+
+Simulated maps are made at ``calibrate.sim_nside`` (0: the input map's Nside)
+from a_lm up to ``prepare.lmax`` (no pixel window, like the prepared data),
+with white noise of ``noise_uk_arcmin`` uK-arcmin (per-pixel rms = level /
+pixel side in arcmin), and the data mask at that Nside.
+
+Random numbers: simulation i draws from ``SeedSequence(calibrate.seed,
+spawn_key=(i,))``, which is ``SeedSequence(seed).spawn(N)[i]``: a simulation
+is the same whatever N, the backend or the order of the work.
+"""
+from __future__ import annotations
+
+import hashlib
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import healpy as hp
+import scipy.stats
+from astropy.table import Table
+
+from . import prepare as prep_mod
+from . import search as search_mod
+from .config import InputError
+from .skymap import SkyMap
+
+EMPIRICAL_MIN = 5            # simulations needed beyond a value to quote an empirical tail
+THRESHOLDS = "thresholds.ecsv"
+NULL_PEAKS = "null_peaks.ecsv"
+
+_DISTS = {"gumbel": scipy.stats.gumbel_r, "genextreme": scipy.stats.genextreme}
+
+
+# --------------------------------------------------------------------------- spectra and skies
+def gaussian_alm(cl, lmax, rng) -> np.ndarray:
+    """Isotropic Gaussian a_lm (healpy order) with <|a_lm|^2> = C_l, from a numpy Generator."""
+    cl = np.asarray(cl, float)
+    ell, m = hp.Alm.getlm(lmax)
+    full = np.zeros(lmax + 1)
+    full[: min(cl.size, lmax + 1)] = cl[: lmax + 1]
+    amp = np.sqrt(np.maximum(full[ell], 0.0))
+    re = rng.standard_normal(ell.size)
+    im = rng.standard_normal(ell.size)
+    return np.where(m == 0, re * amp, (re + 1j * im) * amp / math.sqrt(2.0)).astype(np.complex128)
+
+
+def noise_sigma_pixel(noise_uk_arcmin, nside) -> float:
+    """Per-pixel rms of white noise of the given level (uK-arcmin) at ``nside``."""
+    return float(noise_uk_arcmin) / hp.nside2resol(nside, arcmin=True)
+
+
+def data_spectrum(prepared, prep) -> np.ndarray:
+    """Sky C_l (uK^2, l = 0..lmax) from the prepared data: pseudo-C_l / f_sky / window^2.
+
+    Multipoles below ``prep.lmin`` (removed by prepare) and where the window is
+    negligible are set to 0.
+    """
+    lmax = int(prepared.lmax)
+    mask = prepared.mask if prepared.mask is not None else np.ones_like(prepared.map)
+    fsky = float(np.mean(mask > 0.5))
+    if fsky <= 0:
+        raise InputError("prepared map: no valid pixel; allowed: a map with some valid pixels")
+    pseudo = hp.anafast(prepared.map * (mask > 0.5), lmax=lmax, pol=False) / fsky
+    win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0)
+    cl = np.zeros(lmax + 1)
+    ok = win**2 > 1e-12
+    cl[ok] = pseudo[ok] / win[ok] ** 2
+    cl[: max(2, int(prep.lmin))] = 0.0
+    return cl
+
+
+def theory_spectrum(lmax, cosmo=None) -> np.ndarray:
+    """CAMB TT C_l (uK^2) of the configured cosmology (unlensed, as the topology skies)."""
+    from .cosmology import isotropic_cl
+
+    return isotropic_cl(int(lmax), cosmo)
+
+
+def file_spectrum(path, lmax) -> np.ndarray:
+    """C_l (uK^2, l = 0..lmax) from a table with columns l and C_l."""
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"{p}: calibrate.spectrum_file not found; allowed: a table of l, C_l [uK^2]")
+    ell = cl = None
+    try:
+        t = Table.read(p, format="ascii.ecsv") if p.suffix == ".ecsv" else (
+            Table.read(p) if p.suffix.lower() in (".fits", ".fit") else None)
+    except Exception as exc:
+        raise InputError(f"{p}: calibrate.spectrum_file cannot be read ({exc.__class__.__name__}); "
+                         "allowed: an ECSV/FITS table or two text columns l, C_l")
+    if t is not None:
+        names = {c.lower(): c for c in t.colnames}
+        lk = next((names[k] for k in ("l", "ell") if k in names), None)
+        ck = next((names[k] for k in ("cl", "c_l", "tt", "cl_tt") if k in names), None)
+        if lk is None or ck is None:
+            raise InputError(f"{p}: calibrate.spectrum_file has columns {', '.join(t.colnames)}; "
+                             "allowed: columns l (or ell) and C_l (or cl, tt)")
+        ell, cl = np.asarray(t[lk], float), np.asarray(t[ck], float)
+    else:
+        try:
+            arr = np.loadtxt(p, ndmin=2)
+        except Exception as exc:
+            raise InputError(f"{p}: calibrate.spectrum_file is not a numeric text table ({exc.__class__.__name__}); "
+                             "allowed: two columns l, C_l [uK^2]")
+        if arr.shape[1] < 2:
+            raise InputError(f"{p}: calibrate.spectrum_file has {arr.shape[1]} column; allowed: two columns l, C_l")
+        ell, cl = arr[:, 0], arr[:, 1]
+    if not np.all(np.isfinite(cl)) or np.any(cl < 0):
+        raise InputError(f"{p}: calibrate.spectrum_file has negative or non-finite C_l; allowed: C_l >= 0 in uK^2")
+    out = np.zeros(lmax + 1)
+    li = np.round(ell).astype(int)
+    sel = (li >= 0) & (li <= lmax)
+    out[li[sel]] = cl[sel]
+    missing = [l for l in range(2, lmax + 1) if l not in set(li[sel].tolist())]
+    if missing:
+        raise InputError(f"{p}: calibrate.spectrum_file lacks l = {missing[0]}"
+                         f"{' and ' + str(len(missing) - 1) + ' more' if len(missing) > 1 else ''}; "
+                         f"allowed: every l from 2 to prepare.lmax = {lmax}")
+    return out
+
+
+# --------------------------------------------------------------------------- one simulation
+@dataclass(frozen=True)
+class SimContext:
+    """What every simulation needs (small: shipped to workers)."""
+    cl: np.ndarray                 # sky C_l, l = 0..lmax (uK^2)
+    nside: int                     # simulation Nside
+    mask: np.ndarray | None        # data mask at ``nside`` (1 = use), None for full sky
+    noise_sigma: float             # per-pixel white noise rms (uK)
+    prep: object                   # PrepareSection
+    search: object                 # SearchSection
+    listed: object = None          # listed pairs table (family 'listed')
+    seed: int = 0
+    frame: str | None = None
+    key: str = ""                  # identity of the whole setup (cache keys, stored results)
+
+
+def sim_rng(seed, index) -> np.random.Generator:
+    return np.random.default_rng(np.random.SeedSequence(int(seed), spawn_key=(int(index),)))
+
+
+def simulate_sky(ctx: SimContext, index) -> SkyMap:
+    """Simulated input map i (uK, RING, masked) as a SkyMap for :func:`pipeline.prepare.prepare_map`."""
+    rng = sim_rng(ctx.seed, index)
+    lmax = int(ctx.prep.lmax)
+    alm = gaussian_alm(ctx.cl, lmax, rng)
+    m = hp.alm2map(alm, ctx.nside, lmax=lmax, mmax=lmax, pixwin=False)
+    if ctx.noise_sigma > 0:
+        m = m + ctx.noise_sigma * rng.standard_normal(m.size)
+    mask = np.ones(m.size) if ctx.mask is None else np.asarray(ctx.mask, float)
+    return SkyMap(values=m * mask, mask=mask, nside=int(ctx.nside), unit_in="uK", frame=ctx.frame,
+                  checksum="", notes=[], path=f"simulation {int(index)}")
+
+
+def grid_peaks(prepared, scfg, listed=None, key="", compute=None):
+    """Grid peaks of S (n_radii, 2) of a prepared map: the search's scan and combine, no refinement."""
+    plan = search_mod.make_plan(prepared, scfg, compute, listed, key=key)
+    results = [search_mod.scan_chunk(plan, c) for c in plan.chunk_ids()]
+    pool = search_mod.combine(plan, results)
+    search_mod._RING_CACHE.clear()
+    return plan, pool
+
+
+def null_peaks(ctx: SimContext, index) -> np.ndarray:
+    """Work unit: grid peaks (n_radii, 2) of simulation ``index``."""
+    sky = simulate_sky(ctx, index)
+    prepared = prep_mod.prepare_map(sky, ctx.prep)
+    _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}")
+    return np.asarray(pool.peak_s, float)
+
+
+# --------------------------------------------------------------------------- extreme-value fits
+@dataclass(frozen=True)
+class TailFit:
+    """An extreme-value law fitted to maxima, with its Kolmogorov-Smirnov check."""
+    kind: str
+    params: tuple
+    ks_stat: float
+    ks_p: float
+    n: int
+
+    @property
+    def dist(self):
+        return _DISTS[self.kind](*self.params)
+
+    def sf(self, x):
+        return self.dist.sf(x)
+
+    def isf(self, q):
+        return self.dist.isf(q)
+
+    def pdf(self, x):
+        return self.dist.pdf(x)
+
+
+def fit_tail(x, kind="gumbel") -> TailFit:
+    """Maximum-likelihood extreme-value fit (scipy.stats) of the finite values of ``x``."""
+    x = np.asarray(x, float)
+    x = x[np.isfinite(x)]
+    if x.size < 3 or np.ptp(x) <= 0:
+        return TailFit(kind, (), float("nan"), float("nan"), int(x.size))
+    dist = _DISTS[kind]
+    if kind == "genextreme":
+        c0, loc0, sc0 = 0.1, *scipy.stats.gumbel_r.fit(x)
+        params = tuple(float(v) for v in dist.fit(x, c0, loc=loc0, scale=sc0))
+    else:
+        params = tuple(float(v) for v in dist.fit(x))
+    ks = scipy.stats.kstest(x, dist(*params).cdf)
+    return TailFit(kind, params, float(ks.statistic), float(ks.pvalue), int(x.size))
+
+
+def tail_p(values, fit: TailFit, s):
+    """P(X >= s) from the sample ``values`` (empirical when enough exceed) or the fit: (p, method)."""
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    if not np.isfinite(s) or v.size == 0:
+        return float("nan"), "none"
+    k = int(np.sum(v >= s))
+    if k >= EMPIRICAL_MIN or not fit.params:
+        return (k + 1) / (v.size + 1), "empirical"
+    return float(fit.sf(s)), fit.kind
+
+
+def tail_threshold(values, fit: TailFit, rate):
+    """Value exceeded with probability ``rate``: (threshold, method)."""
+    v = np.asarray(values, float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return float("nan"), "none"
+    if rate * v.size >= EMPIRICAL_MIN or not fit.params:
+        return float(np.quantile(v, 1.0 - rate)), "empirical"
+    return float(fit.isf(rate)), fit.kind
+
+
+# --------------------------------------------------------------------------- the null model
+@dataclass
+class NullModel:
+    """The simulations' grid peaks and everything derived from them."""
+    radii: np.ndarray          # (R,) degrees
+    peaks: np.ndarray          # (N, R, 2)
+    tail: str = "gumbel"
+
+    def __post_init__(self):
+        P = np.where(np.isfinite(self.peaks), self.peaks, np.nan)
+        self.peaks = P
+        with np.errstate(invalid="ignore"):
+            self.mu = np.nanmean(P, axis=0) if P.shape[0] else np.full(P.shape[1:], np.nan)
+            self.sigma = np.nanstd(P, axis=0, ddof=1) if P.shape[0] > 1 else np.full(P.shape[1:], np.nan)
+        self.sigma = np.where(self.sigma > 0, self.sigma, np.nan)
+        z = (P - self.mu) / self.sigma
+        self.zmax = np.array([np.nanmax(r) if np.any(np.isfinite(r)) else np.nan for r in z.reshape(z.shape[0], -1)])
+        self.local_fits = [[fit_tail(P[:, ir, f], self.tail) for f in (0, 1)] for ir in range(len(self.radii))]
+        self.global_fit = fit_tail(self.zmax, self.tail)
+
+    @property
+    def n_sims(self) -> int:
+        return int(self.peaks.shape[0])
+
+    def radius_index(self, radius_deg):
+        """Index of the grid radius nearest to ``radius_deg``."""
+        return int(np.argmin(np.abs(self.radii - float(radius_deg))))
+
+    def z(self, ir, f, s):
+        return float((s - self.mu[ir, f]) / self.sigma[ir, f]) if np.isfinite(self.sigma[ir, f]) else float("nan")
+
+    def p_local(self, ir, f, s):
+        return tail_p(self.peaks[:, ir, f], self.local_fits[ir][f], s)
+
+    def p_global(self, ir, f, s):
+        return tail_p(self.zmax, self.global_fit, self.z(ir, f, s))
+
+    def z_threshold(self, rate):
+        return tail_threshold(self.zmax, self.global_fit, rate)
+
+    def threshold(self, ir, f, rate, which="local"):
+        """S threshold at radius index ``ir``, sense ``f`` and false-alarm ``rate``."""
+        if which == "global":
+            zt, _ = self.z_threshold(rate)
+            return float(self.mu[ir, f] + self.sigma[ir, f] * zt)
+        return tail_threshold(self.peaks[:, ir, f], self.local_fits[ir][f], rate)[0]
+
+    def thresholds_table(self, rates) -> Table:
+        rows = []
+        for ir, r in enumerate(self.radii):
+            for f in (0, 1):
+                fit = self.local_fits[ir][f]
+                for a in rates:
+                    thr, method = tail_threshold(self.peaks[:, ir, f], fit, a)
+                    rows.append((float(r), bool(f), float(a), thr, self.threshold(ir, f, a, "global"), method,
+                                 int(np.sum(np.isfinite(self.peaks[:, ir, f]))), float(self.mu[ir, f]),
+                                 float(self.sigma[ir, f]), *(_loc_scale(fit)), fit.ks_p))
+        t = Table(rows=rows, names=["radius_deg", "flip", "false_alarm", "s_threshold", "s_threshold_global",
+                                    "method", "n_sims", "s_mean", "s_std", "fit_loc", "fit_scale", "fit_ks_p"],
+                  dtype=[float, bool, float, float, float, str, int, float, float, float, float, float])
+        for c in ("s_threshold", "s_threshold_global", "s_mean", "s_std", "fit_loc", "fit_scale", "fit_ks_p"):
+            t[c].info.format = ".5f"
+        t["radius_deg"].unit = "deg"
+        return t
+
+    def meta(self, rates) -> dict:
+        ks = np.array([f.ks_p for row in self.local_fits for f in row], float)
+        out = {"n_sims": self.n_sims, "tail": self.tail, "empirical_min": EMPIRICAL_MIN,
+               "global_statistic": "max over radii and senses of z = (peak S - sim mean) / sim std",
+               "global_fit_params": list(self.global_fit.params), "global_fit_ks_stat": self.global_fit.ks_stat,
+               "global_fit_ks_p": self.global_fit.ks_p,
+               "local_fit_ks_p_min": float(np.nanmin(ks)) if np.any(np.isfinite(ks)) else float("nan"),
+               "local_fit_ks_p_median": float(np.nanmedian(ks)) if np.any(np.isfinite(ks)) else float("nan"),
+               "comparison": "grid S (peak_s / s_grid), no off-grid refinement, in data and simulations"}
+        for a in rates:
+            zt, method = self.z_threshold(a)
+            out[f"z_threshold_{a:g}"] = zt
+            out[f"z_threshold_{a:g}_method"] = method
+        return out
+
+    def null_table(self) -> Table:
+        n, R, _ = self.peaks.shape
+        sim, ir, f = np.meshgrid(np.arange(n), np.arange(R), np.arange(2), indexing="ij")
+        t = Table()
+        t["sim"] = sim.ravel()
+        t["radius_deg"] = self.radii[ir.ravel()]
+        t["radius_deg"].unit = "deg"
+        t["flip"] = f.ravel().astype(bool)
+        t["s_max"] = self.peaks.ravel()
+        t["s_max"].info.format = ".6f"
+        return t
+
+
+def _loc_scale(fit):
+    if not fit.params:
+        return float("nan"), float("nan")
+    return float(fit.params[-2]), float(fit.params[-1])
+
+
+def null_model_from_table(t: Table, tail="gumbel") -> NullModel:
+    """Rebuild the null model from ``null_peaks.ecsv``."""
+    radii = np.unique(np.asarray(t["radius_deg"], float))
+    n = int(np.max(t["sim"])) + 1 if len(t) else 0
+    peaks = np.full((n, radii.size, 2), np.nan)
+    ir = np.searchsorted(radii, np.asarray(t["radius_deg"], float))
+    peaks[np.asarray(t["sim"], int), ir, np.asarray(t["flip"], bool).astype(int)] = np.asarray(t["s_max"], float)
+    return NullModel(radii, peaks, tail=str(t.meta.get("tail", tail)))
+
+
+def load_null_model(run_dir) -> NullModel:
+    from .results import read_table
+
+    p = Path(run_dir) / NULL_PEAKS
+    if not p.exists():
+        raise InputError(f"{p}: calibration not found; allowed: run `twinring calibrate` first")
+    return null_model_from_table(read_table(p, "calibration table"))
+
+
+# --------------------------------------------------------------------------- p-values on tables
+def annotate(table: Table, model: NullModel, s_col="s_grid") -> Table:
+    """Copy of a candidates or peaks table with ``z``, ``p_local`` and ``p_global`` columns."""
+    t = table.copy()
+    z, pl, pg, ml, mg = [], [], [], [], []
+    for row in t:
+        ir = model.radius_index(row["radius_deg"])
+        f = int(bool(row["flip"]))
+        s = float(row[s_col])
+        z.append(model.z(ir, f, s))
+        p1, m1 = model.p_local(ir, f, s)
+        p2, m2 = model.p_global(ir, f, s)
+        pl.append(p1); pg.append(p2); ml.append(m1); mg.append(m2)
+    for name, vals, fmt in (("z", z, ".4f"), ("p_local", pl, ".6g"), ("p_global", pg, ".6g")):
+        if name in t.colnames:
+            t.remove_column(name)
+        t[name] = np.asarray(vals, float)
+        t[name].info.format = fmt
+    for name, vals in (("p_local_method", ml), ("p_global_method", mg)):
+        if name in t.colnames:
+            t.remove_column(name)
+        t[name] = np.asarray(vals, dtype=str) if vals else np.zeros(0, dtype="U10")
+    return t
+
+
+def best_global(table: Table):
+    """Row of a table annotated by :func:`annotate` with the smallest p_global (ties: largest z)."""
+    if len(table) == 0:
+        return None
+    p = np.asarray(table["p_global"], float)
+    z = np.asarray(table["z"], float)
+    p = np.where(np.isfinite(p), p, np.inf)
+    order = np.lexsort((-np.nan_to_num(z, nan=-np.inf), p))
+    return table[int(order[0])]
+
+
+# --------------------------------------------------------------------------- the stage
+def sim_nside_for(cfg, sky_nside) -> int:
+    n = int(cfg.calibrate.sim_nside or sky_nside)
+    if 3 * n - 1 < cfg.prepare.lmax:
+        raise InputError(f"{cfg.source}: calibrate.sim_nside: found {n}; allowed: 0 or a power of two with "
+                         f"3*sim_nside-1 >= prepare.lmax = {cfg.prepare.lmax}")
+    return n
+
+
+def sky_spectrum(cfg, prepared) -> np.ndarray:
+    c = cfg.calibrate
+    lmax = int(cfg.prepare.lmax)
+    if c.spectrum == "data":
+        return data_spectrum(prepared, cfg.prepare)
+    if c.spectrum == "theory":
+        cl = theory_spectrum(lmax, cfg.cosmology)
+    else:
+        cl = file_spectrum(c.spectrum_file, lmax)
+    cl = np.asarray(cl, float)[: lmax + 1].copy()
+    return cl
+
+
+def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
+    """The simulation context for the config, the data SkyMap and its prepared version."""
+    nside = sim_nside_for(cfg, sky.nside)
+    cl = sky_spectrum(cfg, prepared)
+    mask = None
+    if np.any(sky.mask <= 0.5):
+        mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
+    sigma = noise_sigma_pixel(cfg.calibrate.noise_uk_arcmin, nside)
+    h = hashlib.sha256()
+    h.update(cfg.section_hash("prepare", "search").encode())
+    h.update(repr((cfg.calibrate.seed, cfg.calibrate.spectrum, nside, sigma)).encode())
+    h.update(np.ascontiguousarray(cl).tobytes())
+    if mask is not None:
+        h.update(np.packbits(mask > 0.5).tobytes())
+    if listed is not None:
+        for c in ("lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg"):
+            h.update(np.asarray(listed[c], float).tobytes())
+    return SimContext(cl=cl, nside=nside, mask=mask, noise_sigma=sigma, prep=cfg.prepare, search=cfg.search,
+                      listed=listed, seed=int(cfg.calibrate.seed), frame=sky.frame, key=h.hexdigest()[:16])
+
+
+def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=None) -> np.ndarray:
+    """Grid peaks of simulations 0..n-1: array (n, n_radii, 2)."""
+    from .execute import run_units
+
+    res = run_units(null_peaks, ctx, list(range(int(n))), compute=compute, store_dir=store_dir,
+                    tag=f"sims-{ctx.key}", progress=progress)
+    return np.stack([np.asarray(res[i], float) for i in range(int(n))])
+
+
+def load_data(cfg):
+    """The data SkyMap and its prepared version."""
+    from .skymap import load_map
+
+    m = cfg.map
+    if not m.path:
+        raise InputError(f"{cfg.source or '<config>'}: map.path: found null; allowed: a HEALPix FITS file path")
+    sky = load_map(m.path, field=m.field, mask_path=m.mask, mask_field=m.mask_field, mask_threshold=m.mask_threshold)
+    return sky, prep_mod.prepare_map(sky, cfg.prepare)
+
+
+def check_grid(table, model, path):
+    radii = np.unique(np.asarray(table["radius_deg"], float))
+    if radii.size and (radii.size != model.radii.size or not np.allclose(radii, model.radii, atol=1e-6)):
+        raise InputError(f"{path}: radii {radii.min():g}-{radii.max():g} deg ({radii.size}) differ from the "
+                         f"calibration's ({model.radii.size}); allowed: a search with the config's search.radius_deg")
+
+
+def calibrate_run(cfg, run, sky=None, prepared=None):
+    """The calibrate stage on an open run: simulations, thresholds, p-values. Returns summary lines."""
+    import time
+
+    from .results import provenance, read_table, write_table
+    from .stages import input_files, listed_pairs
+
+    c = cfg.calibrate
+    if c.spectrum == "file":
+        file_spectrum(c.spectrum_file, int(cfg.prepare.lmax))        # check before any work
+    if sky is None or prepared is None:
+        sky, prepared = load_data(cfg)
+    listed = listed_pairs(cfg)
+    ctx = make_context(cfg, sky, prepared, listed)
+    if c.spectrum == "data" and c.noise_uk_arcmin > 0:
+        run.log("note: spectrum 'data' already contains the data's noise; calibrate.noise_uk_arcmin adds more")
+    run.log(f"{c.simulations} simulations at Nside {ctx.nside}, spectrum {c.spectrum}, noise "
+            f"{c.noise_uk_arcmin} uK-arcmin, seed {c.seed} (setup {ctx.key})")
+    t0 = time.time()
+    peaks = run_simulations(ctx, c.simulations, compute=cfg.compute, store_dir=run.dir, progress=run.progress)
+    dt = time.time() - t0
+    model = NullModel(np.asarray(cfg.search.radii_deg(), float), peaks, tail=c.tail)
+    inputs = dict(input_files(cfg), spectrum=c.spectrum_file if c.spectrum == "file" else None)
+    meta = provenance(cfg, inputs, "calibrate")
+    meta.update(model.meta(c.false_alarm), spectrum=c.spectrum, sim_nside=ctx.nside,
+                noise_uk_arcmin=c.noise_uk_arcmin, seed=c.seed, setup=ctx.key)
+    write_table(model.thresholds_table(c.false_alarm), run.dir / THRESHOLDS, meta)
+    write_table(model.null_table(), run.dir / NULL_PEAKS, meta)
+    lines = [f"{model.n_sims} simulations in {dt:.1f} s ({dt / max(1, model.n_sims):.2f} s each)"]
+    a = min(c.false_alarm)
+    lo, hi = 0, len(model.radii) - 1
+    lines.append(f"{a:g} thresholds (flip false / true): {model.threshold(lo, 0, a):.3f} / "
+                 f"{model.threshold(lo, 1, a):.3f} at {model.radii[lo]:g} deg, {model.threshold(hi, 0, a):.3f} / "
+                 f"{model.threshold(hi, 1, a):.3f} at {model.radii[hi]:g} deg; global z threshold "
+                 f"{model.z_threshold(a)[0]:.2f}")
+    lines.append(f"extreme-value fit ({c.tail}) of the global maxima: KS p = {model.global_fit.ks_p:.3f}")
+    for name, col in (("peaks.ecsv", "s"), ("candidates.ecsv", "s_grid")):
+        p = run.dir / name
+        if not p.exists():
+            continue
+        t = read_table(p, name)
+        if name == "peaks.ecsv":
+            check_grid(t, model, p)
+        if col not in t.colnames:
+            continue
+        out = annotate(t, model, col)
+        m = dict(t.meta)
+        m.update({f"calibration_{k}": v for k, v in provenance(cfg, None, "calibrate").items()},
+                 calibration_n_sims=model.n_sims, calibration_tail=c.tail)
+        write_table(out, p, m)
+        best = best_global(out)
+        if best is not None:
+            lines.append(f"{name}: most significant at radius {best['radius_deg']:.2f} deg flip {bool(best['flip'])}: "
+                         f"S_grid = {best[col]:.3f}, p_local = {best['p_local']:.3g}, p_global = {best['p_global']:.3g}")
+    return lines
+
+
+def cmd_calibrate(args):
+    from .rundir import open_run
+    from .stages import load_run_config
+
+    cfg = load_run_config(args)
+    run = open_run(cfg, args.out, args.force, "calibrate")
+    run.finish(calibrate_run(cfg, run))
+    return 0

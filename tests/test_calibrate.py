@@ -1,0 +1,239 @@
+"""Calibration: Gaussian skies, spectra, extreme-value tails, thresholds and p-values.
+
+Small setup throughout (Nside 32, lmax 64, 4 deg beam, nside_centers 8, radii
+20-80 deg every 10 deg) so the whole file runs in well under a minute.
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import healpy as hp
+import pytest
+import scipy.stats
+from astropy.table import Table
+
+from pipeline import calibrate as cal
+from pipeline import prepare, rings
+from pipeline.config import InputError, config_from_dict
+from pipeline.skymap import SkyMap
+
+from conftest import periodic_field_on_sphere
+
+NSIDE, LMAX, FWHM = 32, 64, 4.0
+
+
+def small_cfg(**calib):
+    return config_from_dict({
+        "prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": FWHM},
+        "search": {"nside_centers": 8, "radius_deg": [20, 80, 10], "refine": False},
+        "calibrate": dict({"simulations": 40}, **calib),
+        "compute": {"progress": False},
+    })
+
+
+def sky_of(m, mask=None):
+    mask = np.ones_like(m) if mask is None else mask
+    return SkyMap(values=m * mask, mask=mask, nside=hp.npix2nside(m.size), unit_in="uK", frame=None, checksum="")
+
+
+def aligned_rotation():
+    """Rotation taking the torus's x and y faces onto two grid centres of nside_centers 8 (on the equator)."""
+    c = rings.center_grid(8)
+    lon, lat = rings.vec_to_lonlat(c)
+    eq = np.abs(lat) < 1e-6
+    a = c[np.flatnonzero(eq & (np.abs(lon - 5.625) < 1e-6))[0]]
+    b = c[np.flatnonzero(eq & (np.abs(lon - 95.625) < 1e-6))[0]]
+    return np.stack([a, b, np.cross(a, b)])
+
+
+@pytest.fixture(scope="module")
+def torus_setup():
+    """A cubic torus with face circles at 40 deg (L = 2 cos 40 deg, chi = 1), white noise, its calibration."""
+    cfg = small_cfg(simulations=40)
+    L = 2 * math.cos(math.radians(40.0))
+    m = periodic_field_on_sphere((L, L, L), NSIDE, kmax=80, seed=3, rotation=aligned_rotation())
+    m = m + 10.0 * np.random.default_rng(5).standard_normal(m.size)      # 10 uK per pixel against 30 uK rms
+    sky = sky_of(m)
+    prepared = prepare.prepare_map(sky, cfg.prepare)
+    ctx = cal.make_context(cfg, sky, prepared)
+    peaks = cal.run_simulations(ctx, 40)
+    model = cal.NullModel(np.asarray(cfg.search.radii_deg()), peaks)
+    return cfg, prepared, ctx, model
+
+
+# --------------------------------------------------------------------------- Gaussian skies and spectra
+def test_gaussian_alm_has_the_requested_spectrum():
+    # reference: healpy.alm2cl; <|a_lm|^2> = C_l for an isotropic Gaussian sky (common practice, no source)
+    lmax = 40
+    ell = np.arange(lmax + 1)
+    cl = np.where(ell >= 2, 1000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
+    est = np.mean([hp.alm2cl(cal.gaussian_alm(cl, lmax, cal.sim_rng(3, i))) for i in range(200)], axis=0)
+    # 200 realisations: relative error per l about sqrt(2 / ((2l+1) 200)) <= 4.5 % at l = 2
+    assert np.all(np.abs(est[2:] / cl[2:] - 1) < 5 * np.sqrt(2.0 / ((2 * ell[2:] + 1) * 200)))
+    assert np.all(est[:2] == 0)
+
+
+def test_seeds_are_per_simulation():
+    # SeedSequence(seed).spawn(n)[i] is SeedSequence(seed, spawn_key=(i,)) (numpy reference)
+    children = np.random.SeedSequence(7).spawn(5)
+    for i in (0, 3, 4):
+        a = np.random.default_rng(children[i]).standard_normal(4)
+        b = cal.sim_rng(7, i).standard_normal(4)
+        assert np.array_equal(a, b)
+
+
+def test_data_spectrum_recovers_the_sky_spectrum():
+    # the prepared map carries the beam; the estimate divides it out (healpy.gauss_beam reference)
+    cfg = small_cfg()
+    ell = np.arange(LMAX + 1)
+    cl = np.where(ell >= 2, 2000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
+    rng = cal.sim_rng(11, 0)
+    m = hp.alm2map(cal.gaussian_alm(cl, LMAX, rng), NSIDE, lmax=LMAX)
+    est_full = cal.data_spectrum(prepare.prepare_map(sky_of(m), cfg.prepare), cfg.prepare)
+    # a 30 deg band around the equator masked: f_sky = 0.5
+    z = hp.pix2vec(NSIDE, np.arange(m.size))[2]
+    mask = (np.abs(z) > 0.5).astype(float)
+    est_cut = cal.data_spectrum(prepare.prepare_map(sky_of(m, mask), cfg.prepare), cfg.prepare)
+    bins = [(2, 10), (10, 25), (25, 45)]
+    for lo, hi in bins:
+        ref = hp.alm2cl(hp.map2alm(m, lmax=LMAX, iter=3))[lo:hi].sum()
+        assert est_full[lo:hi].sum() / ref == pytest.approx(1.0, rel=0.03)
+        assert est_cut[lo:hi].sum() / ref == pytest.approx(1.0, rel=0.35)
+    assert np.all(est_full[:2] == 0)
+
+
+def test_file_spectrum(tmp_path):
+    ell = np.arange(0, LMAX + 1)
+    cl = np.where(ell >= 2, 1.0 / np.maximum(ell, 1) ** 2, 0.0)
+    t = Table({"l": ell, "C_l": cl})
+    t.write(tmp_path / "cl.ecsv")
+    assert np.allclose(cal.file_spectrum(tmp_path / "cl.ecsv", LMAX), cl)
+    np.savetxt(tmp_path / "cl.txt", np.c_[ell, cl])
+    assert np.allclose(cal.file_spectrum(tmp_path / "cl.txt", LMAX), cl)
+    np.savetxt(tmp_path / "short.txt", np.c_[ell[:20], cl[:20]])
+    with pytest.raises(InputError, match="lacks l = 20"):
+        cal.file_spectrum(tmp_path / "short.txt", LMAX)
+    with pytest.raises(InputError, match="spectrum_file"):
+        config_from_dict({"calibrate": {"spectrum": "file"}})
+    with pytest.raises(InputError, match="false_alarm"):
+        config_from_dict({"calibrate": {"false_alarm": [0.0]}})
+
+
+# --------------------------------------------------------------------------- extreme-value tails
+def test_gumbel_fit_recovers_known_parameters():
+    # reference: scipy.stats.gumbel_r; a sample of a known Gumbel law
+    rng = np.random.default_rng(2024)
+    loc, scale = 0.55, 0.03
+    x = scipy.stats.gumbel_r(loc, scale).rvs(size=3000, random_state=rng)
+    fit = cal.fit_tail(x, "gumbel")
+    assert fit.params[0] == pytest.approx(loc, abs=3 * scale / math.sqrt(3000) * 1.5)
+    assert fit.params[1] == pytest.approx(scale, rel=0.05)
+    assert fit.ks_p > 0.01
+    # tails beyond the sample come from the fit and match the true law
+    true = scipy.stats.gumbel_r(loc, scale)
+    thr, method = cal.tail_threshold(x, fit, 1e-4)
+    assert method == "gumbel" and thr == pytest.approx(true.isf(1e-4), abs=0.01)
+    p, method = cal.tail_p(x, fit, true.isf(1e-5))
+    assert method == "gumbel" and p == pytest.approx(1e-5, rel=0.5)
+    # inside the sample the empirical frequency is used
+    p, method = cal.tail_p(x, fit, true.isf(0.3))
+    assert method == "empirical" and p == pytest.approx(0.3, abs=0.03)
+    # a normal sample is no Gumbel: the KS check says so
+    bad = cal.fit_tail(np.abs(rng.standard_normal(3000)), "gumbel")
+    assert bad.ks_p < 1e-3
+
+
+def test_genextreme_fit_recovers_a_gumbel_like_law():
+    # reference: scipy.stats.genextreme with shape c = 0 is the Gumbel law
+    rng = np.random.default_rng(99)
+    x = scipy.stats.genextreme(0.0, 0.5, 0.03).rvs(size=3000, random_state=rng)
+    fit = cal.fit_tail(x, "genextreme")
+    assert abs(fit.params[0]) < 0.06
+    assert fit.params[1] == pytest.approx(0.5, abs=0.003)
+    assert fit.params[2] == pytest.approx(0.03, rel=0.06)
+
+
+# --------------------------------------------------------------------------- the null model
+@pytest.fixture(scope="module")
+def null_split():
+    """Isotropic skies with a fixed spectrum: 40 for calibration, 40 held out."""
+    cfg = small_cfg()
+    ell = np.arange(LMAX + 1)
+    cl = np.where(ell >= 2, 3000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
+    ctx = cal.SimContext(cl=cl, nside=NSIDE, mask=None, noise_sigma=cal.noise_sigma_pixel(500.0, NSIDE),
+                         prep=cfg.prepare, search=cfg.search, seed=21, key="null-split")
+    peaks = cal.run_simulations(ctx, 80)
+    radii = np.asarray(cfg.search.radii_deg())
+    return radii, peaks[:40], peaks[40:]
+
+
+def test_null_p_global_of_the_best_is_uniform(null_split):
+    # under the null the p-value of the most significant peak is uniform on held-out skies
+    # (Kolmogorov-Smirnov against U(0, 1), scipy.stats.kstest)
+    radii, calib, held = null_split
+    model = cal.NullModel(radii, calib)
+    best = [min(model.p_global(ir, f, sky[ir, f])[0] for ir in range(radii.size) for f in (0, 1)) for sky in held]
+    assert scipy.stats.kstest(best, "uniform").pvalue > 0.01
+    # the local p of the best is far from uniform: the look-elsewhere effect is real and corrected
+    local = [min(model.p_local(ir, f, sky[ir, f])[0] for ir in range(radii.size) for f in (0, 1)) for sky in held]
+    assert scipy.stats.kstest(local, "uniform").pvalue < 0.01
+    assert np.median(local) < np.median(best)
+
+
+def test_thresholds_rise_toward_small_radii(null_split):
+    # fewer independent samples on small circles: the null maxima of S are larger there
+    # (common practice, no source)
+    radii, calib, _ = null_split
+    model = cal.NullModel(radii, np.concatenate([calib]))
+    t = model.thresholds_table([0.01, 0.05])
+    for f in (False, True):
+        for a in (0.01, 0.05):
+            sel = (t["flip"] == f) & (t["false_alarm"] == a)
+            thr = np.asarray(t["s_threshold"][sel])
+            r = np.asarray(t["radius_deg"][sel])
+            assert thr[r <= 30].min() > thr[r >= 60].max()
+            assert scipy.stats.spearmanr(r, thr).statistic < -0.8
+            glob = np.asarray(t["s_threshold_global"][sel])
+            # the global maximum over 14 radius/sense cells exceeds each cell's: global thresholds sit higher
+            # (separate tail fits may cross by a little at one radius)
+            assert np.mean(glob - thr) > 0.01 and np.all(glob > thr - 0.01)
+    assert set(t["method"]) <= {"gumbel", "empirical"}
+    assert t["n_sims"].min() == 40
+
+
+def test_table_round_trip(null_split):
+    radii, calib, _ = null_split
+    model = cal.NullModel(radii, calib)
+    again = cal.null_model_from_table(model.null_table())
+    assert np.array_equal(again.peaks, model.peaks)
+    assert again.z_threshold(0.01) == model.z_threshold(0.01)
+
+
+def test_torus_is_significant_and_gaussian_sky_is_not(torus_setup):
+    # CSS 1998 geometry: a cubic torus of side L = 2 cos(40 deg) chi shows back-to-back circles of radius 40 deg
+    # (translation: flip true); with the data's processing and 40 calibration skies its peak has p_global < 0.01
+    cfg, prepared, ctx, model = torus_setup
+    _, pool = cal.grid_peaks(prepared, cfg.search, key="torus-data")
+    ir = model.radius_index(40.0)
+    p, method = model.p_global(ir, 1, pool.peak_s[ir, 1])
+    assert p < 0.01, (pool.peak_s[ir], p)
+    best = min((model.p_global(i, f, pool.peak_s[i, f])[0], i, f) for i in range(len(model.radii)) for f in (0, 1))
+    assert best[1:] == (ir, 1)
+    # an isotropic sky with the same processing (held-out simulation) is not
+    iso = cal.null_peaks(ctx, 500)
+    p_iso = min(model.p_global(i, f, iso[i, f])[0] for i in range(len(model.radii)) for f in (0, 1))
+    assert p_iso > 0.01
+
+
+def test_annotate_adds_p_values(torus_setup):
+    cfg, prepared, ctx, model = torus_setup
+    t = Table({"radius_deg": [40.2, 40.0, 70.0, 20.0], "flip": [True, True, False, False],
+               "s_grid": [0.95, 0.7, 0.5, 0.5], "s": [0.97, 0.71, 0.52, 0.5]})
+    out = cal.annotate(t, model)
+    assert {"z", "p_local", "p_global", "p_local_method", "p_global_method"} <= set(out.colnames)
+    assert out["p_global"][0] < out["p_global"][1]             # larger S, smaller p at the same radius
+    assert out["p_local"][0] == model.p_local(model.radius_index(40.0), 1, 0.95)[0]
+    assert np.all(out["p_global"] >= out["p_local"] - 0.02)    # looking everywhere costs significance
+    assert out["p_local"][3] > out["p_local"][2]                # the same S is less rare at small radii
+    assert cal.best_global(out)["s_grid"] == 0.95
