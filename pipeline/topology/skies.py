@@ -1,0 +1,432 @@
+"""Gaussian random fields invariant under the group, and the skies they make.
+
+The potential Phi is a real Gaussian field on a cover torus with lattice L
+(columns), f(x) = sum_k c_k exp(i k.x), k = 2 pi L^-T n, n integer,
+<|c_k|^2> = P_Phi(k) / V with P_Phi(k) = 2 pi^2 (9/25) A_s (k/k_pivot)^(n_s-1) / k^3.
+For a holonomy representative h(x) = R_h x + t_h of every rotation part,
+f_G(x) = |H|^-1/2 sum_h f(h x), i.e. C_k = |H|^-1/2 sum_h c_{R_h k} exp(i (R_h k).t_h),
+is invariant under the whole group (MATH.md section 5); the |H|^-1/2 keeps the
+per-mode variance of the quotient equal to that of the cover torus.
+
+Non-compact directions (chimneys, slabs, E18) are stood in for by a period
+``open_length`` (chi units) along them, long enough that it adds no circle
+pair (checked: every element of the stood-in group within reach of a circle
+must be an element of the true group).
+
+``physics="sw"``: dT = T0 Phi / 3 on the sphere |x - x0| = chi, evaluated with
+a 3-D type-2 non-uniform FFT (finufft) on a Gauss-Legendre grid fine enough
+for an exact harmonic analysis up to lmax.
+``physics="full"``: a_lm = 4 pi T0 i^l sum_k R_k exp(i k.x0) Delta_l(|k|) Y*_lm(k^)
+with R = -5 Phi / 3 and Delta_l CAMB's temperature transfer functions (which
+tend to -j_l(k chi)/5 on large scales, so the two physics agree there).  Each
+mode is spread over the four nearest nodes of CAMB's q grid (cubic Lagrange
+weights); per node, one adjoint spherical-harmonic transform of point weights.
+
+Maps are in uK, HEALPix RING.  Random numbers: SeedSequence(seed).spawn(3) ->
+(modes, noise, mask).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import healpy as hp
+
+from .manifolds import Space, Isometry, elements_within, lattice_points_within
+
+SQUARE_TWISTS = (1, 2, 4)
+HEX_TWISTS = (3, 6)
+PHYSICS = ("sw", "full")
+L_MARGIN = 30          # j_l(k chi) is negligible for l > k chi + this
+
+
+class SkyParamError(ValueError):
+    def __init__(self, key, found, allowed):
+        super().__init__(f"{key}: found {found!r}; allowed: {allowed}")
+        self.key, self.found, self.allowed = key, found, allowed
+
+
+# --------------------------------------------------------------------------- lattice and modes
+def sky_lattice(space: Space, open_length=4.0) -> np.ndarray:
+    """3x3 lattice (columns) of the cover torus used for the field, stand-ins along open directions."""
+    cols = [space.lattice[:, i] for i in range(space.lattice.shape[1])]
+    opn = space.open_dirs
+    if opn.shape[1] == 1:
+        cols.append(open_length * opn[:, 0])
+    elif opn.shape[1] == 2:
+        e1, e2 = opn[:, 0], opn[:, 1]
+        q = space.twist_order
+        if q in SQUARE_TWISTS:
+            cols += [open_length * e1, open_length * e2]
+        elif q in HEX_TWISTS:
+            cols += [open_length * e1, open_length * (-0.5 * e1 + math.sqrt(3) / 2 * e2)]
+        else:
+            raise SkyParamError("angles_deg", list(space.angles_deg or ()),
+                                "a slab twist of 0, 60, 90, 120, 180, 240, 270 or 300 degrees for skies "
+                                "(other twists have no periodic stand-in lattice)")
+    elif opn.shape[1] == 3:
+        cols += [open_length * opn[:, i] for i in range(3)]
+    return np.stack(cols, axis=1)
+
+
+def integer_actions(space: Space, lat: np.ndarray):
+    """M_h = B^-1 R_h B (integer) for the dual basis B = L^-T, one per holonomy representative."""
+    B = np.linalg.inv(lat).T
+    Binv = lat.T
+    out = []
+    for _, h in space.holonomy:
+        M = Binv @ h.R @ B
+        Mi = np.rint(M)
+        if np.max(np.abs(M - Mi)) > 1e-6:
+            raise RuntimeError(f"{space.name}: holonomy does not preserve the sky lattice")
+        out.append(Mi.astype(np.int64))
+    return out
+
+
+def check_stand_in(space: Space, lat: np.ndarray, reach=2.0):
+    """Raise SkyParamError if the stand-in periods add circle pairs the true space does not have."""
+    if space.open_dirs.shape[1] == 0:
+        return
+    x0 = space.observer
+    true = {_ikey(g) for _, g, _ in elements_within(space, reach)}
+    for _, h in space.holonomy:
+        v = h(x0) - x0
+        for n in lattice_points_within(lat, v, reach):
+            g = Isometry(h.R, h.t + lat @ n)
+            if np.allclose(g.R, np.eye(3)) and np.allclose(g.t, 0, atol=1e-12):
+                continue
+            if _ikey(g) not in true:
+                raise SkyParamError(
+                    "open_length_chi", None,
+                    f"a stand-in period long enough to add no circles from this observer (an extra image lies "
+                    f"at {np.linalg.norm(g(x0) - x0):.3f} chi); lengthen it or move the observer")
+
+
+def _ikey(g, nd=7):
+    return tuple(np.round(g.R, nd).ravel() + 0.0) + tuple(np.round(g.t, nd) + 0.0)
+
+
+def box_half_sizes(lat, kmax):
+    return np.floor(kmax * np.linalg.norm(lat, axis=0) / (2 * np.pi)).astype(np.int64)
+
+
+def estimate_modes(space: Space, kmax, open_length=4.0):
+    """(number of modes in the ball |k| <= kmax, number of cells of the bounding integer box)."""
+    lat = sky_lattice(space, open_length)
+    vol = abs(np.linalg.det(lat))
+    n_ball = vol * (4 * np.pi / 3) * kmax**3 / (2 * np.pi) ** 3
+    box = int(np.prod(2 * box_half_sizes(lat, kmax) + 1))
+    return int(n_ball), box
+
+
+def estimate_memory_bytes(space: Space, kmax, open_length=4.0, physics="sw"):
+    """Rough peak memory of one sky: mode lists plus (sw) the NUFFT box at upsampling 1.25."""
+    n_ball, box = estimate_modes(space, kmax, open_length)
+    per_mode = 200 if physics == "full" else 120
+    b = per_mode * n_ball
+    if physics == "sw":
+        b += 16 * box * (1 + 1.25**3)
+    return int(b)
+
+
+def ball_modes(lat, kmax):
+    """Integer n (M, 3), lexicographically sorted, with 0 < |k| <= kmax; symmetric under n -> -n."""
+    N = box_half_sizes(lat, kmax)
+    B = np.linalg.inv(lat).T
+    G = (2 * np.pi) ** 2 * (B.T @ B)
+    r1 = np.arange(-N[1], N[1] + 1)
+    r2 = np.arange(-N[2], N[2] + 1)
+    n1g, n2g = np.meshgrid(r1, r2, indexing="ij")
+    n1g, n2g = n1g.ravel(), n2g.ravel()
+    parts = []
+    k2max = kmax * kmax * (1 + 1e-12)
+    for i in range(-N[0], N[0] + 1):
+        k2 = (G[0, 0] * i * i + G[1, 1] * n1g**2 + G[2, 2] * n2g**2
+              + 2 * (G[0, 1] * i * n1g + G[0, 2] * i * n2g + G[1, 2] * n1g * n2g))
+        sel = k2 <= k2max
+        if i == 0:
+            sel &= (n1g != 0) | (n2g != 0)
+        if np.any(sel):
+            parts.append(np.stack([np.full(sel.sum(), i), n1g[sel], n2g[sel]], axis=1))
+    n = np.concatenate(parts) if parts else np.zeros((0, 3), np.int64)
+    return n.astype(np.int64), N
+
+
+@dataclass
+class Modes:
+    """A group-invariant realisation: Phi(x) = sum coef exp(i k.x)."""
+
+    lattice: np.ndarray      # (3, 3) columns, chi
+    n: np.ndarray            # (M, 3) integer, lexicographic, symmetric
+    half: np.ndarray         # (3,) box half sizes
+    k: np.ndarray            # (M, 3) wave vectors, 1/chi, map frame
+    coef: np.ndarray         # (M,) complex, Hermitian: coef[M-1-i] = conj(coef[i])
+
+    @property
+    def kmag(self):
+        return np.linalg.norm(self.k, axis=1)
+
+
+def phi_power(k, a_s, n_s, pivot_chi):
+    """P_Phi(k) in chi^3 (k in 1/chi): 2 pi^2 (9/25) A_s (k / k_pivot)^(n_s - 1) / k^3."""
+    k = np.asarray(k, float)
+    return 2 * np.pi**2 * (9.0 / 25.0) * a_s * (k / pivot_chi) ** (n_s - 1.0) / k**3
+
+
+def invariant_modes(space: Space, kmax, rng, a_s=2.105e-9, n_s=0.9665, pivot_chi=694.0, open_length=4.0) -> Modes:
+    """Group-invariant Gaussian coefficients of Phi for all modes with |k| <= kmax (1/chi)."""
+    lat = sky_lattice(space, open_length)
+    acts = integer_actions(space, lat)
+    n, N = ball_modes(lat, kmax)
+    M = n.shape[0]
+    B2 = 2 * np.pi * np.linalg.inv(lat).T
+    nf = n.astype(np.float64)
+    k = nf @ B2.T
+    dims = tuple(int(d) for d in 2 * N + 1)
+    g = (rng.standard_normal(M) + 1j * rng.standard_normal(M)) / math.sqrt(2.0)
+    c = (g + np.conj(g[::-1])) / math.sqrt(2.0)         # Hermitian: index of -n is M-1-i
+    del g
+    if math.prod(dims) <= 2e8:
+        where = np.full(dims, -1, dtype=np.int32)
+        where[tuple((n + N).T)] = np.arange(M, dtype=np.int32)
+        lookup = lambda m: where[tuple((m + N).T)]  # noqa: E731
+    else:
+        lin = np.ravel_multi_index((n + N).T, dims)      # ascending (lexicographic order)
+        lookup = lambda m: np.searchsorted(lin, np.ravel_multi_index((m + N).T, dims))  # noqa: E731
+    coef = np.zeros(M, complex)
+    for (_, h), A in zip(space.holonomy, acts):
+        if np.array_equal(A, np.eye(3, dtype=np.int64)):
+            coef += c * np.exp(1j * (k @ h.t))
+            continue
+        m = n @ A.T
+        j = lookup(m)
+        # phase (R_h k) . t_h = k . (R_h^T t_h)
+        coef += c[j] * np.exp(1j * (k @ (h.R.T @ h.t)))
+        del m, j
+    del c
+    vol = abs(np.linalg.det(lat))
+    kmag = np.linalg.norm(k, axis=1)
+    coef *= np.sqrt(phi_power(kmag, a_s, n_s, pivot_chi) / vol / len(acts))
+    return Modes(lattice=lat, n=n, half=N, k=k, coef=coef)
+
+
+def field_at(modes: Modes, points, eps=1e-10, nthreads=0):
+    """Phi at 3-D points (..., 3), chi units (type-2 NUFFT over the mode box)."""
+    pts = np.asarray(points, float).reshape(-1, 3)
+    theta = 2 * np.pi * (pts @ np.linalg.inv(modes.lattice).T)
+    theta = (theta + np.pi) % (2 * np.pi) - np.pi
+    dims = tuple(int(d) for d in 2 * modes.half + 1)
+    box = np.zeros(dims, complex)
+    box[tuple((modes.n + modes.half).T)] = modes.coef
+    import finufft
+
+    opts = dict(upsampfac=1.25) if eps >= 1e-9 else {}
+    vals = finufft.nufft3d2(np.ascontiguousarray(theta[:, 0]), np.ascontiguousarray(theta[:, 1]),
+                            np.ascontiguousarray(theta[:, 2]), box, isign=1, eps=eps, nthreads=nthreads, **opts)
+    return vals.real.reshape(np.shape(points)[:-1])
+
+
+# --------------------------------------------------------------------------- harmonic coefficients
+def gl_grid(lmax, lcontent):
+    """Gauss-Legendre grid (ntheta, nphi) exact for analysis to lmax of content up to lcontent."""
+    import scipy.fft
+
+    ntheta = (lmax + lcontent + 2) // 2 + 1
+    nphi = scipy.fft.next_fast_len(lmax + lcontent + 2)
+    nphi += nphi % 2
+    return ntheta, nphi
+
+
+def sw_alm(modes: Modes, observer, lmax, t0_uk, kmax, nthreads=0):
+    """a_lm (uK, healpy order) of dT = T0 Phi / 3 on the unit sphere about the observer."""
+    import ducc0
+
+    ntheta, nphi = gl_grid(lmax, int(math.ceil(kmax)) + L_MARGIN)
+    x, _ = np.polynomial.legendre.leggauss(ntheta)
+    theta = np.arccos(x[::-1])                               # north to south
+    phi = 2 * np.pi * np.arange(nphi) / nphi
+    st, ct = np.sin(theta), np.cos(theta)
+    v = np.stack([st[:, None] * np.cos(phi)[None, :], st[:, None] * np.sin(phi)[None, :],
+                  np.broadcast_to(ct[:, None], (ntheta, nphi))], axis=-1)
+    vals = field_at(modes, v + np.asarray(observer, float), eps=1e-9, nthreads=nthreads)
+    m = (t0_uk / 3.0) * vals
+    alm = ducc0.sht.experimental.analysis_2d(map=m.reshape(1, ntheta, nphi), spin=0, lmax=lmax, geometry="GL",
+                                             nthreads=nthreads)
+    return alm[0]
+
+
+def _lagrange_weights(grid, x):
+    """Four-point Lagrange weights of x on a monotonic grid: (indices (n, 4), weights (n, 4))."""
+    i = np.clip(np.searchsorted(grid, x) - 2, 0, grid.size - 4)
+    idx = i[:, None] + np.arange(4)[None, :]
+    nodes = grid[idx]
+    w = np.ones_like(nodes)
+    for a in range(4):
+        for b in range(4):
+            if a != b:
+                w[:, a] *= (x - nodes[:, b]) / (nodes[:, a] - nodes[:, b])
+    return idx, w
+
+
+def full_alm(modes: Modes, observer, lmax, transfer, nthreads=1, epsilon=1e-7):
+    """a_lm (uK) with CAMB transfer functions; only l >= 2 (CAMB provides no l < 2).
+
+    With W_k = R_k exp(i k.x0) (Hermitian: W_-k = W_k*) and the real point
+    weights u_k = Re W_k + Im W_k, the adjoint transform A over all modes gives
+    2 sum_{half} Re W Y* at even l and 2 sum_{half} Im W Y* at odd l, so
+    a_lm = 4 pi T0 i^l Delta_l A_lm (even l) or 4 pi T0 i^(l+1) Delta_l A_lm (odd l)
+    needs one transform per q node.
+    """
+    import ducc0
+
+    k = modes.k
+    kmag = np.linalg.norm(k, axis=1)
+    W = -(5.0 / 3.0) * modes.coef * np.exp(1j * (k @ np.asarray(observer, float)))
+    u = W.real + W.imag
+    del W
+    q = kmag / transfer.chi_mpc
+    if q.size and (q.max() > transfer.q[-1] or q.min() < transfer.q[0]):
+        raise RuntimeError("modes outside CAMB's q range")
+    idx, w = _lagrange_weights(transfer.q, q)
+    theta = np.arccos(np.clip(k[:, 2] / kmag, -1, 1))
+    phi = np.arctan2(k[:, 1], k[:, 0]) % (2 * np.pi)
+    node = idx.ravel()
+    order = np.argsort(node, kind="stable")
+    node = node[order]
+    mode = order // 4
+    wt = (w.ravel()[order] * u[mode])
+    bounds = np.flatnonzero(np.diff(node)) + 1
+    starts = np.concatenate([[0], bounds])
+    stops = np.concatenate([bounds, [node.size]])
+    l_of = hp.Alm.getlm(lmax)[0]
+    factor = np.where(l_of % 2 == 0, 1.0 + 0j, 1j) * (1j) ** (l_of % 4)
+    acc = np.zeros(hp.Alm.getsize(lmax), complex)
+    loc_all = np.stack([theta, phi], axis=1)
+    for s, e in zip(starts, stops):
+        j = node[s]
+        mm = mode[s:e]
+        a = ducc0.sht.adjoint_synthesis_general(map=wt[s:e].reshape(1, -1), spin=0, lmax=lmax,
+                                                loc=np.ascontiguousarray(loc_all[mm]), epsilon=epsilon,
+                                                nthreads=nthreads)[0]
+        dl = np.zeros(lmax + 1)
+        dl[2:] = transfer.delta[: lmax - 1, j]
+        acc += dl[l_of] * a
+    alm = 4 * np.pi * transfer.tcmb_uk * factor * acc
+    alm[l_of < 2] = 0.0
+    return alm
+
+
+# --------------------------------------------------------------------------- maps
+def noise_map(nside, noise_uk_arcmin, rng):
+    """White noise (uK) of the given depth (uK-arcmin) per HEALPix pixel."""
+    npix = hp.nside2npix(nside)
+    if noise_uk_arcmin <= 0:
+        return np.zeros(npix)
+    pix_arcmin = math.sqrt(hp.nside2pixarea(nside, degrees=True)) * 60.0
+    return rng.standard_normal(npix) * (noise_uk_arcmin / pix_arcmin)
+
+
+def demo_mask(nside, band_deg=12.0, n_holes=30, hole_deg=1.5, rng=None):
+    """A galactic-like mask (1 = valid): a band about the equator, wider towards lon 0, plus round holes."""
+    rng = rng if rng is not None else np.random.default_rng(0)
+    npix = hp.nside2npix(nside)
+    theta, phi = hp.pix2ang(nside, np.arange(npix))
+    lat = 90.0 - np.degrees(theta)
+    dlon = (np.degrees(phi) + 180.0) % 360.0 - 180.0
+    width = band_deg * (1.0 + 0.8 * np.exp(-0.5 * (dlon / 30.0) ** 2))
+    mask = (np.abs(lat) >= width).astype(np.float64) if band_deg > 0 else np.ones(npix)
+    if n_holes > 0:
+        z = rng.uniform(-1, 1, n_holes)
+        lon = rng.uniform(0, 2 * np.pi, n_holes)
+        r = np.sqrt(1 - z * z)
+        for vx, vy, vz in zip(r * np.cos(lon), r * np.sin(lon), z):
+            mask[hp.query_disc(nside, (vx, vy, vz), np.radians(hole_deg), inclusive=False)] = 0.0
+    return mask
+
+
+@dataclass(frozen=True)
+class SkyRecipe:
+    """Everything make_sky needs besides the space (all plain values)."""
+
+    nside: int = 64
+    lmax: int = 128
+    fwhm_deg: float = 3.0
+    physics: str = "sw"
+    seed: int = 5
+    noise_uk_arcmin: float = 0.0
+    lmin: int = 2
+    kmax_factor: float = 2.0
+    open_length: float = 4.0
+
+
+def check_sky(space: Space, recipe: SkyRecipe, memory_gb=None):
+    """Raise SkyParamError before any work for parameters that cannot make a sky."""
+    if recipe.physics not in PHYSICS:
+        raise SkyParamError("physics", recipe.physics, " | ".join(PHYSICS))
+    if recipe.lmax > 3 * recipe.nside - 1:
+        raise SkyParamError("lmax", recipe.lmax, f"at most 3*nside-1 = {3 * recipe.nside - 1}")
+    if recipe.kmax_factor < 1.0:
+        raise SkyParamError("kmax_factor", recipe.kmax_factor, ">= 1 (modes must reach |k| chi = lmax)")
+    if not (recipe.open_length > 2.0):
+        raise SkyParamError("open_length_chi", recipe.open_length, "> 2 (longer than the sphere's diameter)")
+    lat = sky_lattice(space, recipe.open_length)
+    integer_actions(space, lat)
+    check_stand_in(space, lat)
+    kmax = recipe.kmax_factor * recipe.lmax
+    if memory_gb is not None:
+        need = estimate_memory_bytes(space, kmax, recipe.open_length, recipe.physics)
+        if need > memory_gb * 1e9:
+            n_ball, _ = estimate_modes(space, kmax, recipe.open_length)
+            raise SkyParamError(
+                "kmax_factor", recipe.kmax_factor,
+                f"a mode count that fits compute.memory_gb = {memory_gb} ({n_ball:.3g} modes need about "
+                f"{need / 1e9:.1f} GB; lower sky.kmax_factor or sky.lmax, or shrink the cover torus)")
+
+
+def sky_alm(space: Space, recipe: SkyRecipe, cosmo=None, nthreads=0, rng=None):
+    """Unbeamed a_lm (uK, healpy order, l <= lmax; l < lmin zeroed) of one invariant sky."""
+    from .. import cosmology
+
+    check_sky(space, recipe)
+    if rng is None:
+        rng = np.random.default_rng(np.random.SeedSequence(recipe.seed).spawn(3)[0])
+    p = cosmology._params(cosmo)
+    a_s, n_s, pivot_mpc = p[7], p[8], p[9]
+    kmax = recipe.kmax_factor * recipe.lmax
+    chi_mpc = cosmology.chi_ls_gpc(cosmo) * 1000.0
+    modes = invariant_modes(space, kmax, rng, a_s=a_s, n_s=n_s, pivot_chi=pivot_mpc * chi_mpc,
+                            open_length=recipe.open_length)
+    if recipe.physics == "sw":
+        alm = sw_alm(modes, space.observer, recipe.lmax, cosmology.t0_uk(cosmo), kmax, nthreads=nthreads)
+    else:
+        tr = cosmology.transfer_functions(recipe.lmax, kmax, cosmo)
+        alm = full_alm(modes, space.observer, recipe.lmax, tr, nthreads=1)
+    l_of = hp.Alm.getlm(recipe.lmax)[0]
+    alm[l_of < recipe.lmin] = 0.0
+    return alm
+
+
+def make_sky(space: Space, nside=64, lmax=128, fwhm_deg=3.0, physics="sw", seed=5, noise_uk_arcmin=0.0,
+             lmin=2, kmax_factor=2.0, open_length=4.0, cosmo=None, nthreads=0, return_alm=False):
+    """A HEALPix RING map (uK) of the space seen by its observer: beam (FWHM, degrees) and white noise.
+
+    Seeds: SeedSequence(seed).spawn(3) -> (modes, noise, mask); the same seed
+    gives the same realisation in both physics.
+    """
+    recipe = SkyRecipe(nside=nside, lmax=lmax, fwhm_deg=fwhm_deg, physics=physics, seed=seed,
+                       noise_uk_arcmin=noise_uk_arcmin, lmin=lmin, kmax_factor=kmax_factor,
+                       open_length=open_length)
+    ss_modes, ss_noise, _ = np.random.SeedSequence(seed).spawn(3)
+    alm = sky_alm(space, recipe, cosmo=cosmo, nthreads=nthreads, rng=np.random.default_rng(ss_modes))
+    if fwhm_deg > 0:
+        alm = hp.almxfl(alm, hp.gauss_beam(np.radians(fwhm_deg), lmax=lmax))
+    m = hp.alm2map(alm, nside, lmax=lmax)
+    m = m + noise_map(nside, noise_uk_arcmin, np.random.default_rng(ss_noise))
+    return (m, alm) if return_alm else m
+
+
+def mask_for_seed(nside, seed, band_deg=12.0, n_holes=30, hole_deg=1.5):
+    """The demo mask drawn from the sky seed's third stream."""
+    ss_mask = np.random.SeedSequence(seed).spawn(3)[2]
+    return demo_mask(nside, band_deg, n_holes, hole_deg, np.random.default_rng(ss_mask))
