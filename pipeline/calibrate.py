@@ -472,12 +472,17 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
                       listed=listed, seed=int(cfg.calibrate.seed), frame=sky.frame, key=h.hexdigest()[:16])
 
 
-def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=None) -> np.ndarray:
-    """Grid peaks of simulations 0..n-1: array (n, n_radii, 2)."""
+def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=None, log=None) -> np.ndarray:
+    """Grid peaks of simulations 0..n-1: array (n, n_radii, 2).
+
+    With ``store_dir`` each simulation's peaks are kept in ``store_dir/sims/``
+    under the setup key, so an interrupted calibration resumes and a larger
+    ``simulations`` reuses the ones already made.
+    """
     from .execute import run_units
 
     res = run_units(null_peaks, ctx, list(range(int(n))), compute=compute, store_dir=store_dir,
-                    tag=f"sims-{ctx.key}", progress=progress)
+                    tag="sims", key=ctx.key, progress=progress, log=log)
     return np.stack([np.asarray(res[i], float) for i in range(int(n))])
 
 
@@ -518,7 +523,8 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
     run.log(f"{c.simulations} simulations at Nside {ctx.nside}, spectrum {c.spectrum}, noise "
             f"{c.noise_uk_arcmin} uK-arcmin, seed {c.seed} (setup {ctx.key})")
     t0 = time.time()
-    peaks = run_simulations(ctx, c.simulations, compute=cfg.compute, store_dir=run.dir, progress=run.progress)
+    peaks = run_simulations(ctx, c.simulations, compute=cfg.compute, store_dir=run.dir, progress=run.progress,
+                            log=run.log)
     dt = time.time() - t0
     model = NullModel(np.asarray(cfg.search.radii_deg(), float), peaks, tail=c.tail)
     inputs = dict(input_files(cfg), spectrum=c.spectrum_file if c.spectrum == "file" else None)

@@ -1,0 +1,418 @@
+"""Injection-recovery campaigns: would a real topology have been seen?
+
+A campaign takes the configured space (``topology``: its family, shape,
+angles and observer) and rescales it to a grid of sizes; for every size it
+makes ``inject.realizations`` skies of that space, each with the data's noise
+level (``inject.noise_uk_arcmin``), the data mask and the data's ``prepare``
+section, and asks whether the search finds the predicted circle pairs above
+the calibrated threshold.
+
+Size and radius
+    The size of a space is the length of its first generator in units of the
+    last-scattering distance chi (the side L of a cubic three-torus); all other
+    lengths and the observer keep their proportions from ``topology``.  Every
+    distance |g x0 - x0| scales with the size, so the largest circle radius the
+    search can see obeys cos(alpha) = size d1 / 2, d1 the smallest such distance
+    at size 1 (cubic torus: d1 = 1, cos(alpha) = L / 2; Cornish, Spergel &
+    Starkman 1998).  ``inject.sizes`` gives the sizes; otherwise
+    ``inject.radii_deg`` gives the radii and size = 2 cos(alpha) / d1.
+
+Visible pairs
+    Only predicted pairs the configured search family can see count: back-to-back
+    pairs (separation >= 179.5 deg) for ``antipodal``, pairs with a separation
+    in ``search.separation_deg`` for ``general``, all pairs for ``listed``.
+    The campaign's radius for a size is the largest visible radius; the pairs
+    within 0.5 deg of it are the targets.
+
+Detection (``inject.mode``)
+    ``targeted``: the targets are scanned as a listed family at the calibrated
+    grid radii within ``radius_tol_deg`` of the predicted radius (all twists,
+    the predicted sense); detected when the grid peak at some radius reaches
+    the threshold there.  The centres are exact, so this is slightly
+    optimistic against a grid search whose centres miss the true ones by up to
+    half a grid step.
+    ``full``: the full search of the config (grid, family, all radii; no
+    refinement); detected when a kept pair with the predicted sense, both
+    centres within ``centre_tol_deg`` of a target's (0: 2.5 centre-grid steps)
+    and a radius within ``radius_tol_deg`` reaches the threshold at its radius.
+    Thresholds are the calibration's at ``inject.false_alarm``: global (the
+    look-elsewhere-corrected level of pipeline.calibrate) or local.
+
+Orientation: with ``random_orientation`` each sky turns the space by a random
+rotation (Haar measure on z-y-z Euler angles), so the campaign averages over
+where the circles fall on the centre grid.
+
+Random numbers: sky (size i, realisation j) draws from ``SeedSequence(
+inject.seed, spawn_key=(i, j))`` spawned into (orientation, modes, noise).
+"""
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import healpy as hp
+import scipy.stats
+from astropy.table import Table
+
+from . import prepare as prep_mod
+from . import rings
+from .calibrate import grid_peaks, noise_sigma_pixel
+from .config import InputError
+from .skymap import SkyMap
+
+RECOVERY = "recovery.ecsv"
+INJECTIONS = "injections.ecsv"
+BACK_TO_BACK_MIN_DEG = 179.5
+SAME_RADIUS_DEG = 0.5
+CONFIDENCE = 0.95
+
+
+# --------------------------------------------------------------------------- geometry of the campaign
+@dataclass(frozen=True)
+class SpaceShape:
+    """The configured space at size 1 (first length = 1 chi); plain values only."""
+    name: str
+    lengths: tuple          # proportions, first = 1
+    angles_deg: tuple | None
+    observer: tuple         # in units of the first length
+    euler_deg: tuple
+
+    def at(self, size, euler_deg=None):
+        from .topology.manifolds import build_space
+
+        return build_space(self.name, self.lengths, self.angles_deg, self.observer,
+                           self.euler_deg if euler_deg is None else euler_deg, scale=float(size))
+
+
+def shape_from_config(cfg) -> SpaceShape:
+    t = cfg.topology
+    if not t.lengths:
+        raise InputError(f"{cfg.source}: topology.space: found {t.space!r}; allowed: a space with lengths "
+                         "(E1-E17) for an injection campaign")
+    L0 = float(t.lengths[0])
+    return SpaceShape(t.space, tuple(float(x) / L0 for x in t.lengths),
+                      None if t.angles_deg is None else tuple(t.angles_deg),
+                      tuple(float(x) / L0 for x in t.observer), tuple(t.euler_deg))
+
+
+def visible(pairs, scfg):
+    """The predicted pairs (list of dicts) that the configured search family can see."""
+    if scfg.family == "antipodal":
+        return [p for p in pairs if p["separation_deg"] >= BACK_TO_BACK_MIN_DEG]
+    if scfg.family == "general":
+        lo, hi = scfg.separation_deg
+        return [p for p in pairs if lo <= p["separation_deg"] <= hi]
+    return list(pairs)
+
+
+def targets(space, scfg):
+    """(radius_deg, target pairs) of a space: the largest visible circles; (nan, []) when none."""
+    from .topology.circles import predict_pairs
+
+    vis = visible(predict_pairs(space, max_distance=2.0 - 1e-9), scfg)   # a circle needs d < 2 strictly
+    if not vis:
+        return float("nan"), []
+    r = max(p["radius_deg"] for p in vis)
+    return r, [p for p in vis if p["radius_deg"] >= r - SAME_RADIUS_DEG]
+
+
+def distance_per_size(shape: SpaceShape, scfg) -> float:
+    """d1: the smallest |g x0 - x0| of a visible pair for the space at size 1."""
+    from .topology.circles import predict_pairs
+
+    for scale in (0.5, 0.25, 0.125, 0.0625):
+        vis = visible(predict_pairs(shape.at(scale), max_distance=2.0 - 1e-9), scfg)
+        if vis:
+            return min(p["distance"] for p in vis) / scale
+    raise InputError(f"topology.space: {shape.name} shows no circle pair the {scfg.family} search family can see; "
+                     "allowed: another search.family or space")
+
+
+def campaign_sizes(cfg, shape, scfg):
+    """Sizes (chi) of the campaign and d1."""
+    d1 = distance_per_size(shape, scfg)
+    if cfg.inject.sizes:
+        return tuple(float(s) for s in cfg.inject.sizes), d1
+    return tuple(2.0 * math.cos(math.radians(r)) / d1 for r in cfg.inject.radii_deg), d1
+
+
+def size_for_radius(radius_deg, d1):
+    return 2.0 * np.cos(np.radians(radius_deg)) / d1
+
+
+def random_euler(rng):
+    """Euler angles (z-y-z, degrees) of a uniformly random rotation."""
+    a, c = rng.uniform(0.0, 360.0, 2)
+    b = math.degrees(math.acos(rng.uniform(-1.0, 1.0)))
+    return (float(a), float(b), float(c))
+
+
+# --------------------------------------------------------------------------- one injected sky
+@dataclass(frozen=True)
+class InjectContext:
+    shape: SpaceShape
+    sizes: tuple
+    random_orientation: bool
+    recipe: object                 # pipeline.topology.skies.SkyRecipe (lmax = prepare.lmax, no beam)
+    cosmo: object
+    nside: int
+    mask: np.ndarray | None
+    noise_sigma: float
+    prep: object
+    search: object
+    mode: str
+    radius_tol_deg: float
+    centre_tol_deg: float
+    radii: np.ndarray              # calibrated grid radii
+    thresholds: np.ndarray         # (R, 2) S thresholds
+    seed: int
+    key: str = ""
+
+
+def unit_rngs(seed, isize, irep):
+    ss = np.random.SeedSequence(int(seed), spawn_key=(int(isize), int(irep)))
+    return [np.random.default_rng(s) for s in ss.spawn(3)]
+
+
+def injected_sky(ctx: InjectContext, isize, irep):
+    """(space, SkyMap) of sky (isize, irep): the space's field, white noise, the data mask."""
+    from .topology.skies import sky_alm
+
+    r_orient, r_modes, r_noise = unit_rngs(ctx.seed, isize, irep)
+    euler = random_euler(r_orient) if ctx.random_orientation else None
+    space = ctx.shape.at(ctx.sizes[isize], euler)
+    alm = sky_alm(space, ctx.recipe, cosmo=ctx.cosmo, nthreads=1, rng=r_modes)
+    m = hp.alm2map(alm, ctx.nside, lmax=ctx.recipe.lmax, mmax=ctx.recipe.lmax, pixwin=False)
+    if ctx.noise_sigma > 0:
+        m = m + ctx.noise_sigma * r_noise.standard_normal(m.size)
+    mask = np.ones(m.size) if ctx.mask is None else np.asarray(ctx.mask, float)
+    sky = SkyMap(values=m * mask, mask=mask, nside=int(ctx.nside), unit_in="uK", frame=None, checksum="",
+                 notes=[], path=f"injection {isize}/{irep}")
+    return space, sky
+
+
+def _window(ctx, radius):
+    idx = np.flatnonzero(np.abs(ctx.radii - radius) <= ctx.radius_tol_deg + 1e-9)
+    if idx.size == 0 and ctx.radii.size and ctx.radii.min() - 1e-9 <= radius <= ctx.radii.max() + 1e-9:
+        idx = np.array([int(np.argmin(np.abs(ctx.radii - radius)))])
+    return idx
+
+
+def judge_targeted(ctx, prepared, pairs, radius, key):
+    idx = _window(ctx, radius)
+    if idx.size == 0:
+        return None
+    step = float(np.median(np.diff(ctx.radii))) if ctx.radii.size > 1 else 1.0
+    scfg = dataclasses.replace(ctx.search, family="listed", radius_deg=(float(ctx.radii[idx[0]]),
+                               float(ctx.radii[idx[-1]]), step))
+    table = Table(rows=[(p["lon1_deg"], p["lat1_deg"], p["lon2_deg"], p["lat2_deg"]) for p in pairs],
+                  names=["lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg"])
+    plan, pool = grid_peaks(prepared, scfg, table, key=key)
+    best = None
+    for f in sorted({int(p["flip"]) for p in pairs}):
+        for q, ir in enumerate(idx):
+            s = float(pool.peak_s[q, f])
+            thr = float(ctx.thresholds[ir, f])
+            if np.isfinite(s) and (best is None or s - thr > best[0] - best[1]):
+                best = (s, thr, float(ctx.radii[ir]))
+    return best
+
+
+def judge_full(ctx, prepared, pairs, radius, key):
+    if _window(ctx, radius).size == 0:
+        return None
+    plan, pool = grid_peaks(prepared, ctx.search, None, key=key)
+    tol = ctx.centre_tol_deg or 2.5 * plan.grid_deg
+    cos_tol = math.cos(math.radians(tol))
+    c1, c2 = plan.centres[pool.i], plan.centres[pool.j]
+    rad = np.asarray(plan.radii_deg)[pool.radius_index] if pool.s.size else np.zeros(0)
+    best = None
+    for p in pairs:
+        a = rings.lonlat_to_vec(p["lon1_deg"], p["lat1_deg"])
+        b = rings.lonlat_to_vec(p["lon2_deg"], p["lat2_deg"])
+        near = ((c1 @ a >= cos_tol) & (c2 @ b >= cos_tol)) | ((c1 @ b >= cos_tol) & (c2 @ a >= cos_tol))
+        sel = np.flatnonzero(near & (pool.sense == int(p["flip"])) & (np.abs(rad - p["radius_deg"]) <= ctx.radius_tol_deg + 1e-9))
+        for e in sel:
+            ir = int(np.argmin(np.abs(ctx.radii - rad[e])))
+            s, thr = float(pool.s[e]), float(ctx.thresholds[ir, int(p["flip"])])
+            if best is None or s - thr > best[0] - best[1]:
+                best = (s, thr, float(rad[e]))
+    if best is None:
+        # nothing kept near the targets: report the best grid S in the window for the record
+        idx = _window(ctx, radius)
+        f = int(pairs[0]["flip"])
+        q = int(idx[np.argmax(pool.peak_s[idx, f])])
+        best = (-np.inf, float(ctx.thresholds[q, f]), float(ctx.radii[q]))
+    return best
+
+
+def inject_unit(ctx: InjectContext, unit):
+    """Work unit (size index, realisation): dict with the verdict on one injected sky."""
+    isize, irep = unit
+    space, sky = injected_sky(ctx, isize, irep)
+    radius, pairs = targets(space, ctx.search)
+    out = dict(size_index=int(isize), realization=int(irep), size_chi=float(ctx.sizes[isize]),
+               radius_deg=float(radius), n_targets=len(pairs), flip=bool(pairs[0]["flip"]) if pairs else False,
+               s=float("nan"), s_threshold=float("nan"), radius_found_deg=float("nan"), in_range=False,
+               detected=False)
+    if not pairs:
+        return out
+    prepared = prep_mod.prepare_map(sky, ctx.prep)
+    judge = judge_targeted if ctx.mode == "targeted" else judge_full
+    best = judge(ctx, prepared, pairs, radius, key=f"{ctx.key}-inj{isize}-{irep}")
+    if best is None:
+        return out
+    s, thr, r = best
+    out.update(s=float(s), s_threshold=float(thr), radius_found_deg=float(r), in_range=True,
+               detected=bool(np.isfinite(s) and s >= thr))
+    return out
+
+
+# --------------------------------------------------------------------------- tables
+def injections_table(results) -> Table:
+    names = ["size_index", "realization", "size_chi", "radius_deg", "n_targets", "flip", "s", "s_threshold",
+             "radius_found_deg", "in_range", "detected"]
+    dtypes = [int, int, float, float, int, bool, float, float, float, bool, bool]
+    rows = [[r[n] for n in names] for r in results]
+    t = Table(rows=rows, names=names, dtype=dtypes) if rows else Table(names=names, dtype=dtypes)
+    for c in ("size_chi", "radius_deg", "s", "s_threshold", "radius_found_deg"):
+        t[c].info.format = ".5f"
+    return t
+
+
+def binomial_interval(k, n, confidence=CONFIDENCE):
+    """Clopper-Pearson interval of a binomial proportion (scipy.stats.binomtest)."""
+    if n == 0:
+        return float("nan"), float("nan")
+    ci = scipy.stats.binomtest(int(k), int(n)).proportion_ci(confidence_level=confidence, method="exact")
+    return float(ci.low), float(ci.high)
+
+
+def recovery_table(inj: Table, confidence=CONFIDENCE) -> Table:
+    rows = []
+    for isize in sorted(set(int(x) for x in inj["size_index"])):
+        sel = inj[inj["size_index"] == isize]
+        n = len(sel)
+        k = int(np.sum(sel["detected"]))
+        lo, hi = binomial_interval(k, n, confidence)
+        s = np.asarray(sel["s"], float)
+        s = s[np.isfinite(s)]
+        rows.append((float(sel["size_chi"][0]), float(np.nanmedian(sel["radius_deg"])), n, k, k / n if n else np.nan,
+                     lo, hi, bool(np.all(sel["in_range"])), float(np.median(s)) if s.size else np.nan,
+                     float(np.nanmedian(sel["s_threshold"])) if np.any(np.isfinite(sel["s_threshold"])) else np.nan))
+    names = ["size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high", "in_range", "s_median",
+             "s_threshold"]
+    dtypes = [float, float, int, int, float, float, float, bool, float, float]
+    t = Table(rows=rows, names=names, dtype=dtypes) if rows else Table(names=names, dtype=dtypes)
+    t.sort("radius_deg")
+    for c in ("size_chi", "radius_deg", "fraction", "ci_low", "ci_high", "s_median", "s_threshold"):
+        t[c].info.format = ".4f"
+    t["radius_deg"].unit = "deg"
+    return t
+
+
+# --------------------------------------------------------------------------- the stage
+def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
+    """The campaign context from the config, the data SkyMap (mask, Nside) and the null model."""
+    from .calibrate import sim_nside_for
+    from .topology.skies import SkyRecipe
+
+    inj = cfg.inject
+    shape = shape or shape_from_config(cfg)
+    if sizes is None:
+        sizes, _ = campaign_sizes(cfg, shape, cfg.search)
+    nside = sim_nside_for(cfg, sky.nside)
+    mask = None
+    if np.any(sky.mask <= 0.5):
+        mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
+    physics = inj.physics or cfg.sky.physics
+    recipe = SkyRecipe(nside=nside, lmax=int(cfg.prepare.lmax), fwhm_deg=0.0, physics=physics, seed=0,
+                       noise_uk_arcmin=0.0, lmin=2, kmax_factor=cfg.sky.kmax_factor,
+                       open_length=cfg.sky.open_length_chi)
+    radii = np.asarray(model.radii, float)
+    cal_radii = np.asarray(cfg.search.radii_deg(), float)
+    if radii.size != cal_radii.size or not np.allclose(radii, cal_radii, atol=1e-6):
+        raise InputError(f"{cfg.source}: search.radius_deg differs from the calibration's radii; "
+                         "allowed: rerun `twinring calibrate` with this config")
+    thr = np.array([[model.threshold(ir, f, inj.false_alarm, inj.threshold) for f in (0, 1)]
+                    for ir in range(radii.size)])
+    sigma = noise_sigma_pixel(inj.noise_uk_arcmin, nside)
+    h = hashlib.sha256()
+    h.update(cfg.section_hash("prepare", "search", "inject", "cosmology").encode())
+    h.update(repr((shape, tuple(sizes), recipe, nside)).encode())
+    h.update(np.ascontiguousarray(thr).tobytes())
+    if mask is not None:
+        h.update(np.packbits(mask > 0.5).tobytes())
+    return InjectContext(shape=shape, sizes=tuple(float(s) for s in sizes), random_orientation=inj.random_orientation,
+                         recipe=recipe, cosmo=cfg.cosmology, nside=nside, mask=mask, noise_sigma=sigma,
+                         prep=cfg.prepare, search=cfg.search, mode=inj.mode, radius_tol_deg=inj.radius_tol_deg,
+                         centre_tol_deg=inj.centre_tol_deg, radii=radii, thresholds=thr, seed=int(inj.seed),
+                         key=h.hexdigest()[:16])
+
+
+def check_campaign(cfg, ctx: InjectContext):
+    """Parameters that cannot make a sky, before any work."""
+    from .topology.skies import SkyParamError, check_sky
+
+    for size in (min(ctx.sizes), max(ctx.sizes)):
+        try:
+            check_sky(ctx.shape.at(size), ctx.recipe, memory_gb=cfg.compute.memory_gb)
+        except SkyParamError as exc:
+            raise InputError(f"{cfg.source}: sky.{exc.key} (campaign size {size:.3g} chi): found {exc.found!r}; "
+                             f"allowed: {exc.allowed}")
+        except Exception as exc:       # a shape that the space does not allow
+            raise InputError(f"{cfg.source}: inject.sizes: size {size:.3g} chi of {ctx.shape.name} rejected "
+                             f"({exc}); allowed: sizes that make a valid space")
+
+
+def inject_run(cfg, run, sky=None):
+    """The inject stage on an open run: the campaign, injections.ecsv and recovery.ecsv. Returns summary lines."""
+    import time
+
+    from .calibrate import load_data, load_null_model
+    from .execute import run_units
+    from .results import provenance, write_table
+    from .stages import input_files
+
+    model = load_null_model(run.dir)
+    shape = shape_from_config(cfg)
+    sizes, d1 = campaign_sizes(cfg, shape, cfg.search)
+    if sky is None:
+        sky, _ = load_data(cfg)
+    ctx = make_context(cfg, sky, model, shape, sizes)
+    check_campaign(cfg, ctx)
+    units = [(i, j) for i in range(len(sizes)) for j in range(cfg.inject.realizations)]
+    run.log(f"campaign: {shape.name}, {len(sizes)} sizes x {cfg.inject.realizations} skies, mode {ctx.mode}, "
+            f"{cfg.inject.threshold} threshold at {cfg.inject.false_alarm:g} (setup {ctx.key})")
+    t0 = time.time()
+    res = run_units(inject_unit, ctx, units, compute=cfg.compute, store_dir=run.dir, tag="inject", key=ctx.key,
+                    progress=run.progress, log=run.log)
+    dt = time.time() - t0
+    inj = injections_table([res[u] for u in units])
+    rec = recovery_table(inj)
+    meta = provenance(cfg, input_files(cfg), "inject")
+    meta.update(space=shape.name, shape_lengths=list(shape.lengths), distance_per_size=d1, mode=ctx.mode,
+                false_alarm=cfg.inject.false_alarm, threshold=cfg.inject.threshold,
+                realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=cfg.inject.noise_uk_arcmin,
+                physics=ctx.recipe.physics, confidence=CONFIDENCE, search_family=cfg.search.family,
+                size_definition="length of the first generator in units of chi (cubic torus: side L)")
+    write_table(inj, run.dir / INJECTIONS, meta)
+    write_table(rec, run.dir / RECOVERY, meta)
+    lines = [f"{len(units)} injected skies in {dt:.1f} s ({dt / max(1, len(units)):.2f} s each)"]
+    for row in rec:
+        lines.append(f"  size {row['size_chi']:.3f} chi, radius {row['radius_deg']:5.1f} deg: "
+                     f"{row['detected']}/{row['n']} recovered ({row['ci_low']:.2f}-{row['ci_high']:.2f})")
+    return lines
+
+
+def cmd_inject(args):
+    from .rundir import open_run
+    from .stages import load_run_config
+
+    cfg = load_run_config(args)
+    run = open_run(cfg, args.out, args.force, "inject")
+    run.finish(inject_run(cfg, run))
+    return 0

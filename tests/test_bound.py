@@ -1,0 +1,76 @@
+"""The bound on the size of space from the smallest detectable radius."""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from astropy.table import Table
+
+from pipeline import bound
+from pipeline.topology.manifolds import build_space
+from pipeline.topology.circles import predict_pairs
+
+
+def test_cubic_torus_bound_from_alpha_min_25_deg():
+    # Cornish, Spergel & Starkman 1998 geometry: a face pair of a cubic torus has cos(alpha) = L / (2 chi), so
+    # no circles above 25 deg means L > 2 chi cos 25 deg = 25.2 Gpc for chi = 13.9 Gpc
+    # (compare: Cornish et al. 2004, PRL 92, 201302, quote 24 Gpc from radii above 25 deg)
+    assert bound.size_bound(25.0, d1=1.0, chi=13.9) == pytest.approx(25.2, abs=0.05)
+    rec = Table({"radius_deg": [15.0, 20.0, 25.0, 30.0, 40.0, 60.0], "fraction": [0.2, 0.8, 0.96, 1.0, 1.0, 1.0]})
+    row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)")
+    assert row["alpha_min_deg"] == 25.0
+    assert row["size_gpc"] == pytest.approx(25.2, abs=0.05)
+    assert row["size_gpc"] > 24.0
+    text = bound.statement(row)
+    assert "25.0 deg" in text and "25.2 Gpc" in text and "cubic three-torus" in text
+
+
+def test_distance_per_size_matches_the_predicted_circles():
+    # the bound's size relation against the predicted circles of the same space: at size 2 cos(alpha) / d1
+    # the largest back-to-back circles have radius alpha (E2 half-turn space, shape 1 : 1.2 : 0.8)
+    from pipeline import inject
+    from pipeline.config import config_from_dict
+
+    cfg = config_from_dict({"topology": {"space": "E2", "lengths": [1.0, 1.2, 0.8]}})
+    shape = inject.shape_from_config(cfg)
+    d1 = inject.distance_per_size(shape, cfg.search)
+    size = bound.size_bound(35.0, d1)
+    radius, pairs = inject.targets(shape.at(size), cfg.search)
+    assert radius == pytest.approx(35.0, abs=1e-6)
+    assert all(p["separation_deg"] > 179.5 for p in pairs)
+
+
+def test_alpha_min_rules():
+    r = [20, 30, 40, 50, 60, 70]
+    f = [0.1, 0.97, 0.9, 1.0, 1.0, 1.0]
+    assert bound.alpha_min(r, f, 0.95) == 50          # 40 deg fails, so only 50 deg and above count
+    assert bound.alpha_min(r, f, 0.85) == 30
+    # a significant candidate at 55 deg: circles were found there, nothing above 55 + tol is excluded below it
+    assert bound.alpha_min(r, f, 0.95, significant_radii=[55.0], radius_tol=2.0) == 60
+    assert bound.alpha_min(r, f, 0.95, significant_radii=[65.0], radius_tol=2.0) == 70
+    assert math.isnan(bound.alpha_min(r, f, 0.95, significant_radii=[75.0], radius_tol=10.0))
+    assert math.isnan(bound.alpha_min(r, [1, 1, 1, 1, 1, 0.5], 0.95))
+    # order of the table does not matter
+    assert bound.alpha_min(r[::-1], f[::-1], 0.95) == 50
+
+
+def test_significant_radii_reads_p_global():
+    t = Table({"radius_deg": [30.0, 45.0, 60.0], "p_global": [0.5, 0.004, np.nan]})
+    assert bound.significant_radii([t, None], 0.01) == [45.0]
+
+
+def test_no_bound_statement():
+    rec = Table({"radius_deg": [30.0, 40.0], "fraction": [0.5, 0.6]})
+    row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)")
+    assert math.isnan(row["size_chi"])
+    assert "No bound" in bound.statement(row)
+    t = bound.bound_table(row)
+    assert t["statement"][0].startswith("No bound")
+
+
+def test_torus_face_distance_is_the_side():
+    # cubic torus: the three face pairs have |g x0 - x0| = L, the six edge pairs L sqrt 2 (CSS 1998)
+    pairs = predict_pairs(build_space("E1", (0.9, 0.9, 0.9)), max_distance=2.0 - 1e-9)
+    d = sorted({round(p["distance"], 9) for p in pairs})
+    assert d[0] == pytest.approx(0.9) and d[1] == pytest.approx(0.9 * math.sqrt(2))
