@@ -220,10 +220,13 @@ def _worker_peak_mb():
 def _task(fn, common, u, shared=None):
     """Run one unit in a worker: returns (u, result, worker peak MB, host:pid)."""
     global _IN_WORKER
-    _IN_WORKER = True
-    if shared is not None:
-        common = _load_shared(*shared)
-    r = fn(common, u)
+    before, _IN_WORKER = _IN_WORKER, True     # nested run_units calls inside fn stay serial
+    try:
+        if shared is not None:
+            common = _load_shared(*shared)
+        r = fn(common, u)
+    finally:
+        _IN_WORKER = before
     return u, r, _worker_peak_mb(), f"{socket.gethostname()}:{os.getpid()}"
 
 
