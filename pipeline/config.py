@@ -221,7 +221,8 @@ class InjectSection:
     threshold: str = _f("global", "str", choices=("global", "local"))
     radius_tol_deg: float = _f(2.0, "float", min=0.0, max=45.0)
     centre_tol_deg: float = _f(0.0, "float", min=0.0, max=90.0)
-    noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
+    noise_uk_arcmin: float | None = _f(None, "float?", min=0.0)
+    beam_fwhm_deg: float | None = _f(None, "float?", min=0.0, max=180.0)
     random_orientation: bool = _f(True, "bool")
     physics: str | None = _f(None, "str?", choices=("sw", "full"))
 

@@ -38,6 +38,11 @@ Detection (``inject.mode``)
     Thresholds are the calibration's at ``inject.false_alarm``: global (the
     look-elsewhere-corrected level of pipeline.calibrate) or local.
 
+Instrument: white noise of ``inject.noise_uk_arcmin`` and a Gaussian beam of
+``inject.beam_fwhm_deg`` (the instrument's, applied before ``prepare`` adds its
+own); unset, both follow the ``sky`` section when the config makes a synthetic
+sky, else 0.  For real data set them to the data's noise and beam.
+
 Orientation: with ``random_orientation`` each sky turns the space by a random
 rotation (Haar measure on z-y-z Euler angles), so the campaign averages over
 where the circles fall on the centre grid.
@@ -157,6 +162,7 @@ class InjectContext:
     sizes: tuple
     random_orientation: bool
     recipe: object                 # pipeline.topology.skies.SkyRecipe (lmax = prepare.lmax, no beam)
+    beam_fwhm_deg: float           # instrument beam applied before the data's processing
     cosmo: object
     nside: int
     mask: np.ndarray | None
@@ -185,6 +191,8 @@ def injected_sky(ctx: InjectContext, isize, irep):
     euler = random_euler(r_orient) if ctx.random_orientation else None
     space = ctx.shape.at(ctx.sizes[isize], euler)
     alm = sky_alm(space, ctx.recipe, cosmo=ctx.cosmo, nthreads=1, rng=r_modes)
+    if ctx.beam_fwhm_deg > 0:
+        alm = hp.almxfl(alm, hp.gauss_beam(math.radians(ctx.beam_fwhm_deg), lmax=ctx.recipe.lmax))
     m = hp.alm2map(alm, ctx.nside, lmax=ctx.recipe.lmax, mmax=ctx.recipe.lmax, pixwin=False)
     if ctx.noise_sigma > 0:
         m = m + ctx.noise_sigma * r_noise.standard_normal(m.size)
@@ -315,6 +323,22 @@ def recovery_table(inj: Table, confidence=CONFIDENCE) -> Table:
 
 
 # --------------------------------------------------------------------------- the stage
+def instrument(cfg):
+    """(noise uK-arcmin, instrument beam FWHM deg) of the injected skies.
+
+    Unset keys take the ``sky`` section's values when the config makes a synthetic
+    sky (so injections look like the data), else 0.
+    """
+    synthetic = "sky" in cfg.present or "topology" in cfg.present
+    noise = cfg.inject.noise_uk_arcmin
+    beam = cfg.inject.beam_fwhm_deg
+    if noise is None:
+        noise = cfg.sky.noise_uk_arcmin if synthetic else 0.0
+    if beam is None:
+        beam = cfg.sky.fwhm_deg if synthetic else 0.0
+    return float(noise), float(beam)
+
+
 def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
     """The campaign context from the config, the data SkyMap (mask, Nside) and the null model."""
     from .calibrate import sim_nside_for
@@ -339,15 +363,16 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
                          "allowed: rerun `twinring calibrate` with this config")
     thr = np.array([[model.threshold(ir, f, inj.false_alarm, inj.threshold) for f in (0, 1)]
                     for ir in range(radii.size)])
-    sigma = noise_sigma_pixel(inj.noise_uk_arcmin, nside)
+    noise, beam = instrument(cfg)
+    sigma = noise_sigma_pixel(noise, nside)
     h = hashlib.sha256()
     h.update(cfg.section_hash("prepare", "search", "inject", "cosmology").encode())
-    h.update(repr((shape, tuple(sizes), recipe, nside)).encode())
+    h.update(repr((shape, tuple(sizes), recipe, nside, sigma, beam)).encode())
     h.update(np.ascontiguousarray(thr).tobytes())
     if mask is not None:
         h.update(np.packbits(mask > 0.5).tobytes())
     return InjectContext(shape=shape, sizes=tuple(float(s) for s in sizes), random_orientation=inj.random_orientation,
-                         recipe=recipe, cosmo=cfg.cosmology, nside=nside, mask=mask, noise_sigma=sigma,
+                         recipe=recipe, beam_fwhm_deg=beam, cosmo=cfg.cosmology, nside=nside, mask=mask, noise_sigma=sigma,
                          prep=cfg.prepare, search=cfg.search, mode=inj.mode, radius_tol_deg=inj.radius_tol_deg,
                          centre_tol_deg=inj.centre_tol_deg, radii=radii, thresholds=thr, seed=int(inj.seed),
                          key=h.hexdigest()[:16])
@@ -396,7 +421,8 @@ def inject_run(cfg, run, sky=None):
     meta = provenance(cfg, input_files(cfg), "inject")
     meta.update(space=shape.name, shape_lengths=list(shape.lengths), distance_per_size=d1, mode=ctx.mode,
                 false_alarm=cfg.inject.false_alarm, threshold=cfg.inject.threshold,
-                realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=cfg.inject.noise_uk_arcmin,
+                realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=instrument(cfg)[0],
+                beam_fwhm_deg=instrument(cfg)[1],
                 physics=ctx.recipe.physics, confidence=CONFIDENCE, search_family=cfg.search.family,
                 size_definition="length of the first generator in units of chi (cubic torus: side L)")
     write_table(inj, run.dir / INJECTIONS, meta)
