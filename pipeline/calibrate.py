@@ -52,6 +52,7 @@ is the same whatever N, the backend or the order of the work.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import math
 from dataclasses import dataclass
@@ -67,6 +68,7 @@ from . import search as search_mod
 from .config import InputError
 from .skymap import SkyMap
 
+NOT_IN_PEAKS = ("top", "refine", "suppress_deg", "keep_per_radius")   # search keys that leave grid peaks alone
 EMPIRICAL_MIN = 5            # simulations needed beyond a value to quote an empirical tail
 THRESHOLDS = "thresholds.ecsv"
 NULL_PEAKS = "null_peaks.ecsv"
@@ -460,7 +462,9 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
         mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
     sigma = noise_sigma_pixel(cfg.calibrate.noise_uk_arcmin, nside)
     h = hashlib.sha256()
-    h.update(cfg.section_hash("prepare", "search").encode())
+    # everything that changes a simulation's grid peaks (not search.top / refine / suppression)
+    grid = {k: v for k, v in dataclasses.asdict(cfg.search).items() if k not in NOT_IN_PEAKS}
+    h.update(repr((dataclasses.asdict(cfg.prepare), sorted(grid.items()))).encode())
     h.update(repr((cfg.calibrate.seed, cfg.calibrate.spectrum, nside, sigma)).encode())
     h.update(np.ascontiguousarray(cl).tobytes())
     if mask is not None:
@@ -567,6 +571,9 @@ def cmd_calibrate(args):
     from .stages import load_run_config
 
     cfg = load_run_config(args)
+    if cfg.calibrate.spectrum == "file":
+        file_spectrum(cfg.calibrate.spectrum_file, int(cfg.prepare.lmax))
+    sky, prepared = load_data(cfg)              # bad inputs fail before the output dir is touched
     run = open_run(cfg, args.out, args.force, "calibrate")
-    run.finish(calibrate_run(cfg, run))
+    run.finish(calibrate_run(cfg, run, sky, prepared))
     return 0

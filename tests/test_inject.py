@@ -1,4 +1,4 @@
-"""Injection-recovery campaigns on small skies (Nside 32, lmax 64, 4 deg beam, nside_centers 8)."""
+"""Injection-recovery campaigns on small skies (Nside 32, lmax 64, 4 deg beam, nside_centers 16)."""
 from __future__ import annotations
 
 import dataclasses
@@ -21,7 +21,7 @@ NSIDE, LMAX = 32, 64
 def campaign_cfg(**inj):
     return config_from_dict({
         "prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": 4.0},
-        "search": {"nside_centers": 8, "radius_deg": [20, 80, 5], "refine": False},
+        "search": {"nside_centers": 16, "radius_deg": [20, 80, 10], "refine": False},
         "calibrate": {"simulations": 40},
         "inject": dict({"radii_deg": [40.0, 60.0], "realizations": 3, "noise_uk_arcmin": 500.0}, **inj),
         "compute": {"progress": False},
