@@ -341,3 +341,31 @@ def test_combine_does_not_depend_on_chunk_order(env):
     for name in ("radius_index", "s", "i", "j", "sense", "k", "peak_s", "peak_idx"):
         assert np.array_equal(getattr(a, name), getattr(b, name)), name
     assert a.pairs_scanned == b.pairs_scanned == sum(r.pairs for r in chunks)
+
+
+def test_dask_scheduler_address_and_progress(tmp_path):
+    """compute.scheduler: connect to a running scheduler (here a local one) instead of starting a cluster."""
+    from distributed import LocalCluster
+
+    bars = []
+
+    class Bar:
+        def __init__(self, iterable, desc="", unit="", total=None):
+            self.desc, self.total, self.n, self.closed = desc, total, 0, False
+            bars.append(self)
+
+        def update(self, n):
+            self.n += n
+
+        def close(self):
+            self.closed = True
+
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        c = types.SimpleNamespace(backend="dask", workers=2, scheduler=cluster.scheduler_address, memory_gb=4.0)
+        res = execute.run_units(_int_square, {"scale": 2.0}, range(10), compute=c, store_dir=tmp_path,
+                                tag="remote", progress=Bar)
+        assert len(cluster.scheduler.workers) == 2     # the cluster outlives the call
+    assert dict(res) == {u: 2.0 * u * u for u in range(10)}
+    assert res.stats.backend == "dask" and res.stats.peak_worker_mb > 10
+    assert len(bars) == 1 and bars[0].total == 10 and bars[0].n == 10 and bars[0].closed
+    assert len(list((tmp_path / "remote").glob("u*.pkl"))) == 10
