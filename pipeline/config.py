@@ -241,6 +241,7 @@ class BoundSection:
     recovery: float = _f(0.95, "float", min=0.0, max=1.0, open_min=True)
     false_alarm: float = _f(0.01, "float", min=0.0, max=1.0, open_min=True)
     chi_gpc: float | None = _f(None, "float?", min=0.0, open_min=True)
+    conservative: bool = _f(False, "bool")
 
     def check(self, where):
         pass

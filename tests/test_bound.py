@@ -74,3 +74,16 @@ def test_torus_face_distance_is_the_side():
     pairs = predict_pairs(build_space("E1", (0.9, 0.9, 0.9)), max_distance=2.0 - 1e-9)
     d = sorted({round(p["distance"], 9) for p in pairs})
     assert d[0] == pytest.approx(0.9) and d[1] == pytest.approx(0.9 * math.sqrt(2))
+
+
+def test_conservative_uses_the_interval():
+    # with few realisations, 4 of 4 recovered has a 95 % Clopper-Pearson lower end of 0.40 (beta quantile)
+    from pipeline import inject
+
+    lo4, _ = inject.binomial_interval(4, 4)
+    lo60, _ = inject.binomial_interval(80, 80)   # 0.025^(1/80) = 0.955
+    rec = Table({"radius_deg": [30.0, 50.0, 70.0], "fraction": [1.0, 1.0, 1.0], "ci_low": [lo4, lo60, lo60]})
+    plain = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x")
+    strict = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x", conservative=True)
+    assert plain["alpha_min_deg"] == 30.0 and strict["alpha_min_deg"] == 50.0
+    assert "lower 95 % bound" in bound.statement(strict)
