@@ -241,7 +241,7 @@ def _row_dict(row, cols):
             elif isinstance(v, (np.integer,)):
                 out[c] = int(v)
             elif isinstance(v, (np.floating, float)):
-                out[c] = None if not np.isfinite(v) else round(float(v), 6)
+                out[c] = None if not np.isfinite(v) else float(f"{float(v):.6g}")
             else:
                 out[c] = str(v)
     return out
