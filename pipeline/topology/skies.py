@@ -187,13 +187,19 @@ def invariant_modes(space: Space, kmax, rng, a_s=2.105e-9, n_s=0.9665, pivot_chi
     g = (rng.standard_normal(M) + 1j * rng.standard_normal(M)) / math.sqrt(2.0)
     c = (g + np.conj(g[::-1])) / math.sqrt(2.0)         # Hermitian: index of -n is M-1-i
     del g
+    strides = np.array([dims[1] * dims[2], dims[2], 1], dtype=np.int64)
+    offset = int(N @ strides)
+
+    def linear(m):
+        return m @ strides + offset
+
     if math.prod(dims) <= 2e8:
-        where = np.full(dims, -1, dtype=np.int32)
-        where[tuple((n + N).T)] = np.arange(M, dtype=np.int32)
-        lookup = lambda m: where[tuple((m + N).T)]  # noqa: E731
+        where = np.full(math.prod(dims), -1, dtype=np.int32)
+        where[linear(n)] = np.arange(M, dtype=np.int32)
+        lookup = lambda m: where[linear(m)]  # noqa: E731
     else:
-        lin = np.ravel_multi_index((n + N).T, dims)      # ascending (lexicographic order)
-        lookup = lambda m: np.searchsorted(lin, np.ravel_multi_index((m + N).T, dims))  # noqa: E731
+        lin = linear(n)                                   # ascending (lexicographic order)
+        lookup = lambda m: np.searchsorted(lin, linear(m))  # noqa: E731
     coef = np.zeros(M, complex)
     for (_, h), A in zip(space.holonomy, acts):
         if np.array_equal(A, np.eye(3, dtype=np.int64)):
@@ -206,7 +212,7 @@ def invariant_modes(space: Space, kmax, rng, a_s=2.105e-9, n_s=0.9665, pivot_chi
         del m, j
     del c
     vol = abs(np.linalg.det(lat))
-    kmag = np.linalg.norm(k, axis=1)
+    kmag = np.sqrt(np.einsum("ij,ij->i", k, k))
     coef *= np.sqrt(phi_power(kmag, a_s, n_s, pivot_chi) / vol / len(acts))
     return Modes(lattice=lat, n=n, half=N, k=k, coef=coef)
 
