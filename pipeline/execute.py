@@ -32,9 +32,10 @@ Shards
     ``K`` modulo ``N`` (:func:`shard_units`).
 
 Memory
-    ``unit_gb`` (an estimate of one unit's peak memory) caps the units in flight
-    at ``floor(compute.memory_gb / unit_gb)`` (at least one); a ``LocalCluster``
-    gets ``memory_limit = memory_gb / workers`` per worker.  Every result comes
+    ``compute.memory_gb`` is the budget of all units in flight together (on
+    every worker).  ``unit_gb`` (an estimate of one unit's peak memory) caps
+    the units in flight at ``floor(memory_gb / unit_gb)`` (at least one); a
+    ``LocalCluster`` gets ``memory_limit = memory_gb / workers`` per worker.  Every result comes
     back with its worker's peak resident memory, reported in the summary.
 
 Nesting: a ``run_units`` call inside a unit that already runs in a worker
