@@ -217,8 +217,11 @@ def invariant_modes(space: Space, kmax, rng, a_s=2.105e-9, n_s=0.9665, pivot_chi
     return Modes(lattice=lat, n=n, half=N, k=k, coef=coef)
 
 
-def field_at(modes: Modes, points, eps=1e-10, nthreads=0):
-    """Phi at 3-D points (..., 3), chi units (type-2 NUFFT over the mode box)."""
+def field_at(modes: Modes, points, eps=1e-10, nthreads=0, complex_values=False):
+    """Phi at 3-D points (..., 3), chi units (type-2 NUFFT over the mode box).
+
+    ``complex_values``: return the complex sum (its imaginary part vanishes for a real field).
+    """
     pts = np.asarray(points, float).reshape(-1, 3)
     theta = 2 * np.pi * (pts @ np.linalg.inv(modes.lattice).T)
     theta = (theta + np.pi) % (2 * np.pi) - np.pi
@@ -230,7 +233,8 @@ def field_at(modes: Modes, points, eps=1e-10, nthreads=0):
     opts = dict(upsampfac=1.25) if eps >= 1e-9 else {}
     vals = finufft.nufft3d2(np.ascontiguousarray(theta[:, 0]), np.ascontiguousarray(theta[:, 1]),
                             np.ascontiguousarray(theta[:, 2]), box, isign=1, eps=eps, nthreads=nthreads, **opts)
-    return vals.real.reshape(np.shape(points)[:-1])
+    vals = vals if complex_values else vals.real
+    return vals.reshape(np.shape(points)[:-1])
 
 
 # --------------------------------------------------------------------------- harmonic coefficients
