@@ -11,11 +11,14 @@ process (no pool); with two, a joblib (loky) pool is started inside the timed
 call.  The tables of every run are checked to be identical.
 
 Prints one line per worker count and, as its last line, ``speedup: X``
-(time with 1 worker / time with the largest worker count).
+(time with 1 worker / time with the largest worker count).  The load average
+before and after is printed too: on a machine shared with other jobs the
+wall times (and so the speedup) reflect that load, not the code.
 """
 from __future__ import annotations
 
 import argparse
+import os
 import time
 import types
 
@@ -71,6 +74,7 @@ def main():
     print(f"sky: torus side {args.side}, map Nside {args.nside}, lmax {args.lmax}; search: general, "
           f"nside_centers {args.nside_centers}, radii {list(args.radii)}, refine {bool(args.refine)}")
 
+    load0 = os.getloadavg()[0]
     times, tables = {}, {}
     for w in args.workers:
         cfg = config_from_dict({**base, "compute": {"backend": "processes", "workers": w, "progress": False}},
@@ -102,6 +106,10 @@ def main():
         all(np.array_equal(np.asarray(p[col]), np.asarray(ref_p[col]), equal_nan=p[col].dtype.kind == "f")
             for _, p in tables.values() for col in ref_p.colnames)
     print(f"identical tables across worker counts: {'yes' if same else 'NO'}")
+    load1 = os.getloadavg()[0]
+    print(f"load average (1 min) before {load0:.2f}, after {load1:.2f}, on {os.cpu_count()} cores")
+    if max(load0, load1) > 0.5 + (os.cpu_count() or 1):
+        print("warning: the machine was busy with other work; the wall times include waiting for a core")
     w0, w1 = args.workers[0], args.workers[-1]
     print(f"speedup: {times[w0] / times[w1]:.2f}")
 
