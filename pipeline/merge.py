@@ -24,7 +24,6 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import json
-import math
 from pathlib import Path
 
 import numpy as np
@@ -244,7 +243,7 @@ def merge_shards(dirs, out, force=False, progress=True):
     cfg = load_config(first / CONFIG_NAME)
     key = mans[0][1]["work_key"]
     n = mans[0][1]["shard"][1]
-    prepared, _src = load_prepared_for_merge(cfg, [d for d, _ in mans])
+    prepared, _ = load_prepared_for_merge(cfg, [d for d, _ in mans])
     table = stages.listed_pairs(cfg)
     plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash())
     if plan_key(plan) != key:

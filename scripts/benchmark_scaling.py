@@ -20,7 +20,6 @@ from __future__ import annotations
 import argparse
 import os
 import time
-import types
 
 import healpy as hp
 import numpy as np
