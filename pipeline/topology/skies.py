@@ -123,7 +123,7 @@ def estimate_modes(space: Space, kmax, open_length=4.0):
 def estimate_memory_bytes(space: Space, kmax, open_length=4.0, physics="sw"):
     """Rough peak memory of one sky: mode lists plus (sw) the NUFFT box at upsampling 1.25."""
     n_ball, box = estimate_modes(space, kmax, open_length)
-    per_mode = 200 if physics == "full" else 120
+    per_mode = 360 if physics == "full" else 120
     b = per_mode * n_ball
     if physics == "sw":
         b += 16 * box * (1 + 1.25**3)
@@ -298,30 +298,33 @@ def full_alm(modes: Modes, observer, lmax, transfer, nthreads=1, epsilon=1e-7):
     q = kmag / transfer.chi_mpc
     if q.size and (q.max() > transfer.q[-1] or q.min() < transfer.q[0]):
         raise RuntimeError("modes outside CAMB's q range")
-    idx, w = _lagrange_weights(transfer.q, q)
+    order = np.argsort(q, kind="stable")            # modes by |k|: each q node's modes are contiguous
+    q, u, k, kmag = q[order], u[order], k[order], kmag[order]
+    idx, w = _lagrange_weights(transfer.q, q)        # idx[:, a] = base + a, base non-decreasing in q
+    base = idx[:, 0]
     theta = np.arccos(np.clip(k[:, 2] / kmag, -1, 1))
     phi = np.arctan2(k[:, 1], k[:, 0]) % (2 * np.pi)
-    node = idx.ravel()
-    order = np.argsort(node, kind="stable")
-    node = node[order]
-    mode = order // 4
-    wt = (w.ravel()[order] * u[mode])
-    bounds = np.flatnonzero(np.diff(node)) + 1
-    starts = np.concatenate([[0], bounds])
-    stops = np.concatenate([bounds, [node.size]])
+    loc_all = np.stack([theta, phi], axis=1)
+    del k, theta, phi
     l_of = hp.Alm.getlm(lmax)[0]
     factor = np.where(l_of % 2 == 0, 1.0 + 0j, 1j) * (1j) ** (l_of % 4)
     acc = np.zeros(hp.Alm.getsize(lmax), complex)
-    loc_all = np.stack([theta, phi], axis=1)
-    for s, e in zip(starts, stops):
-        j = node[s]
-        mm = mode[s:e]
-        a = ducc0.sht.adjoint_synthesis_general(map=wt[s:e].reshape(1, -1), spin=0, lmax=lmax,
-                                                loc=np.ascontiguousarray(loc_all[mm]), epsilon=epsilon,
-                                                nthreads=nthreads)[0]
-        dl = np.zeros(lmax + 1)
-        dl[2:] = transfer.delta[: lmax - 1, j]
-        acc += dl[l_of] * a
+    if q.size:
+        for j in range(int(base[0]), int(base[-1]) + 4):
+            sl = []
+            for a in range(4):
+                lo, hi = np.searchsorted(base, [j - a, j - a + 1])
+                if hi > lo:
+                    sl.append((lo, hi, a))
+            if not sl:
+                continue
+            loc = np.concatenate([loc_all[lo:hi] for lo, hi, _ in sl])
+            wt = np.concatenate([w[lo:hi, a] * u[lo:hi] for lo, hi, a in sl])
+            alm_j = ducc0.sht.adjoint_synthesis_general(map=wt.reshape(1, -1), spin=0, lmax=lmax, loc=loc,
+                                                        epsilon=epsilon, nthreads=nthreads)[0]
+            dl = np.zeros(lmax + 1)
+            dl[2:] = transfer.delta[: lmax - 1, j]
+            acc += dl[l_of] * alm_j
     alm = 4 * np.pi * transfer.tcmb_uk * factor * acc
     alm[l_of < 2] = 0.0
     return alm
