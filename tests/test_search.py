@@ -140,3 +140,33 @@ def test_general_search_finds_half_turn_pair_off_axis():
     assert best["separation_deg"] == pytest.approx(126.87, abs=2.0)
     assert bool(best["flip"]) is True
     assert best["s"] > 0.85 and best["s"] > cand[1]["s"] + 0.1
+
+
+def test_masked_torus_still_shows_its_pairs(torus_sky):
+    # A band mask of +-15 deg about the equator: sums run over samples valid on both circles
+    # (masked S, MATH.md section 2); the torus pairs (CSS 1998) keep S near 1.
+    nside = 64
+    theta, _ = hp.pix2ang(nside, np.arange(hp.nside2npix(nside)))
+    mask = (np.abs(90 - np.degrees(theta)) > 15).astype(float)
+    import types
+    p = types.SimpleNamespace(alm=torus_sky.alm, lmax=torus_sky.lmax, mask=mask, nside=nside)
+    sc = SearchSection(family="antipodal", nside_centers=32, radius_deg=(51.0, 55.0, 1.0), top=6)
+    _, pool, cand, _ = search.run_search(p, sc)
+    faces, _ = torus_directions()
+    hits = sorted(match_pair(r, faces, 4.0) for r in cand[:3])
+    assert hits == [0, 1, 2]
+    assert np.all(cand[:3]["s"] > 0.85) and np.all(cand[:3]["flip"])
+
+
+def test_listed_pairs_are_scanned_over_radius(torus_sky):
+    # family 'listed': the pairs of a table (here two torus face/edge directions and one unrelated
+    # pair) scanned over radius: the true pairs peak at their CSS 1998 radii.
+    t = Table({"lon1_deg": [0.0, 45.0, 10.0], "lat1_deg": [0.0, 0.0, 20.0],
+               "lon2_deg": [180.0, 225.0, 190.0], "lat2_deg": [0.0, 0.0, -20.0]})
+    sc = SearchSection(family="listed", listed="pairs.ecsv", radius_deg=(25.0, 80.0, 1.0), top=3, refine=False)
+    plan, pool, cand, peaks = search.run_search(torus_sky, sc, listed_table=t)
+    assert pool.pairs_scanned == 3 * 56
+    got = {round(float(r["radius_deg"])) for r in cand[:2]}
+    assert got == {32, 53}
+    assert np.all(cand[:2]["s"] > 0.85)
+    assert cand[2]["s"] < 0.7
