@@ -38,7 +38,7 @@ def setup():
     sky = SkyMap(values=m, mask=np.ones_like(m), nside=NSIDE, unit_in="uK", frame=None, checksum="")
     prepared = prepare.prepare_map(sky, cfg.prepare)
     ctx = cal.make_context(cfg, sky, prepared)
-    model = cal.NullModel(np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, 40))
+    model = cal.NullModel(np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, 30))
     return cfg, shape, sky, model
 
 
