@@ -288,6 +288,11 @@ def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
     u1, v1 = _tangent_basis(c1)
     u2, v2 = _tangent_basis(c2)
     step = plan.grid_deg
+    r_step = radius_step(plan)
+    # stay near the grid point and inside the searched radii: a refinement that wanders off to
+    # tiny circles finds spurious matches (a ring of a few pixels is all gradient)
+    r_lo = max(min(plan.radii_deg) - r_step, 0.5 * min(plan.radii_deg))
+    r_hi = min(max(plan.radii_deg) + r_step, 90.0)
 
     def unpack(x):
         a = _offset(c1, u1, v1, x[0], x[1])
@@ -297,14 +302,14 @@ def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
 
     def negs(x):
         a, b, r = unpack(x)
-        if not (0.5 < r <= 90.0):
+        if not (r_lo <= r <= r_hi) or abs(x[2]) > 1.5 * r_step or np.any(np.abs(np.delete(x, 2)) > 1.5 * step):
             return 2.0
         return -pair_statistic(plan, a, b, r)[sense][0]
 
     n = 3 if antipodal else 5
     x0 = np.zeros(n)
     simplex = [x0]
-    scales = [0.5 * step, 0.5 * step, 1.0, 0.5 * step, 0.5 * step][:n]
+    scales = [0.5 * step, 0.5 * step, 0.5 * r_step, 0.5 * step, 0.5 * step][:n]
     for d in range(n):
         e = np.zeros(n)
         e[d] = scales[d]
@@ -343,9 +348,12 @@ def suppress(c1, c2, radius, s, centre_tol_deg, radius_tol_deg, limit=None):
     return np.array(kept, dtype=int)
 
 
+def radius_step(plan: SearchPlan):
+    return float(np.min(np.diff(plan.radii_deg))) if len(plan.radii_deg) > 1 else 1.0
+
+
 def radius_window(plan: SearchPlan):
-    steps = np.diff(plan.radii_deg) if len(plan.radii_deg) > 1 else [1.0]
-    return max(3.0, 3 * float(np.min(steps)))
+    return max(3.0, 3 * radius_step(plan))
 
 
 def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None) -> tuple[Table, Table]:
