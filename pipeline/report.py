@@ -85,7 +85,7 @@ def fig_peaks(peaks, model, thresholds, path, dpi=110):
             if "p_global" in d.colnames and len(d):
                 k = int(np.nanargmin(np.where(np.isfinite(d["p_global"]), d["p_global"], np.inf)))
                 ax.annotate(f"p_global = {d['p_global'][k]:.2g}", (d["radius_deg"][k], d["s"][k]),
-                            xytext=(8, 8), textcoords="offset points", fontsize=8)
+                            xytext=(10, -4), textcoords="offset points", fontsize=8)
         ax.set_title(SENSE_LABEL[flip], fontsize=10)
         ax.set_xlabel("circle radius [deg]")
         ax.grid(alpha=0.3)
@@ -248,7 +248,7 @@ def _row_dict(row, cols):
 
 
 CAND_COLS = ("rank", "radius_deg", "lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg", "separation_deg", "twist_deg",
-             "flip", "s", "s_grid", "z", "p_local", "p_global")
+             "flip", "s", "s_grid", "z", "p_local", "p_global", "p_global_method")
 
 
 def summarize(run_dir, cfg=None, figures=()):
@@ -272,7 +272,7 @@ def summarize(run_dir, cfg=None, figures=()):
             out["most_significant_candidate"] = _row_dict(best_global(cand), CAND_COLS)
     if peaks is not None and "p_global" in peaks.colnames and len(peaks):
         out["most_significant_peak"] = _row_dict(best_global(peaks), ("radius_deg", "flip", "s", "z", "p_local",
-                                                                     "p_global"))
+                                                                     "p_global", "p_global_method"))
     if thr is not None:
         meta = thr.meta
         out["calibration"] = {"n_sims": meta.get("n_sims"), "spectrum": meta.get("spectrum"),
@@ -303,8 +303,11 @@ def headline(s) -> str:
         p = sig["p_global"]
         verdict = "significant" if p < 0.01 else "consistent with an isotropic sky"
         n = s.get("calibration", {}).get("n_sims")
+        method = sig.get("p_global_method")
+        how = (f"{n} simulations" if method in (None, "empirical") else
+               f"the {method} tail fitted to {n} simulations, beyond all of them")
         return (f"Most significant circle pair: S = {sig['s']:.3f} at radius {sig['radius_deg']:.1f} deg, "
-                f"flip {str(sig['flip']).lower()}: p_global = {p:.2g} from {n} simulations ({verdict}).")
+                f"flip {str(sig['flip']).lower()}: p_global = {p:.2g} from {how} ({verdict}).")
     b = s.get("best_candidate")
     if b is not None:
         return (f"Best circle pair: S = {b['s']:.3f} at radius {b['radius_deg']:.1f} deg (not calibrated: "
