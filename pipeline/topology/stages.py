@@ -120,3 +120,37 @@ def run_sky(cfg, out_dir) -> dict:
         paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=mhead, provenance=provenance(
             cfg, stage="sky-mask"), column_names=["MASK"], column_units="")
     return paths
+
+
+# --------------------------------------------------------------------------- command-line handlers
+def cmd_predict(args):
+    from ..config import load_config
+    from ..rundir import open_run
+    from ..results import read_table
+
+    cfg = load_config(args.config)
+    run = open_run(cfg, args.out, args.force, "predict")
+    path = run_predict(cfg, run.dir)
+    t = read_table(path, "predicted circles")
+    lines = [f"{cfg.topology.space} {list(cfg.topology.lengths)} ({cfg.topology.units}) seen from "
+             f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
+    for r in t[:12]:
+        lines.append(f"  radius {r['radius_deg']:6.2f} deg, separation {r['separation_deg']:6.2f} deg, "
+                     f"twist {r['twist_deg']:6.1f} deg, flip {bool(r['flip'])}  [{r['element']}]")
+    if len(t) > 12:
+        lines.append(f"  ... {len(t) - 12} more in {path.name}")
+    run.finish(lines)
+    return 0
+
+
+def cmd_sky(args):
+    from ..config import load_config
+    from ..rundir import open_run
+
+    cfg = load_config(args.config)
+    run = open_run(cfg, args.out, args.force, "sky")
+    paths = run_sky(cfg, run.dir)
+    pred = run_predict(cfg, run.dir)
+    run.finish([f"{cfg.topology.space} sky ({cfg.sky.physics}, nside {cfg.sky.nside}, seed {cfg.sky.seed}) -> "
+                + ", ".join(p.name for p in paths.values()) + f"; predicted circles -> {pred.name}"])
+    return 0
