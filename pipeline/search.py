@@ -142,16 +142,15 @@ _RING_CACHE: dict = {}
 
 def ring_set(plan: SearchPlan, ir):
     """Spectra of the rings about every centre at radius index ``ir`` (cached per process)."""
-    key = (plan.key, id(plan.alm), ir)
-    hit = _RING_CACHE.get(key)
-    if hit is not None:
-        return hit
+    hit = _RING_CACHE.get(ir)
+    if hit is not None and hit[0] is plan:   # the very same plan object (ids of dead objects are reused)
+        return hit[1]
     alpha = math.radians(plan.radii_deg[ir])
     vals, wts = rings.sample_rings(plan.alm, plan.lmax, plan.centres, alpha, plan.nsamp[ir], None, plan.mask,
                                    nthreads=plan.threads)
     spec = ring_spectra(vals, wts, plan.weighting)
     _RING_CACHE.clear()   # one radius at a time per process bounds memory
-    _RING_CACHE[key] = spec
+    _RING_CACHE[ir] = (plan, spec)
     return spec
 
 

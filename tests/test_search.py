@@ -172,3 +172,15 @@ def test_listed_pairs_are_scanned_over_radius(torus_sky):
     # refinement stays inside the scanned radii (no drift to tiny, all-gradient circles)
     assert np.all(cand["radius_deg"] >= 24.0)
     assert cand[2]["s"] < 0.75
+
+
+def test_ring_cache_never_serves_another_sky(torus_sky):
+    # two different skies through plans with the same key: each gets its own rings
+    import types
+    sc = SearchSection(family="antipodal", nside_centers=8, radius_deg=(50.0, 50.0, 1.0), top=1, refine=False)
+    results = []
+    for scale in (1.0, -1.0):
+        p = types.SimpleNamespace(alm=torus_sky.alm * scale, lmax=torus_sky.lmax, mask=None, nside=64)
+        plan = search.make_plan(p, sc, key="same")
+        results.append(search.ring_set(plan, 0).b.copy())
+    np.testing.assert_allclose(results[1], -results[0], atol=1e-4)
