@@ -51,7 +51,8 @@ def atomic_path(path):
         os.replace(tmp, path)
     except OSError as exc:
         _unlink(tmp)
-        raise InputError(f"{path}: write failed ({exc.strerror or exc}); earlier contents left in place")
+        raise InputError(f"{path}: write failed ({exc.strerror or exc}); allowed: a writable place with free space "
+                         "(earlier contents left in place)")
     except BaseException:
         _unlink(tmp)
         raise
