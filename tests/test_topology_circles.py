@@ -145,3 +145,14 @@ def test_run_predict_writes_tables(tmp_path):
     cfg2 = config_from_dict({"topology": {"space": "E1", "lengths": [1.2 * chi] * 3, "units": "Gpc"}})
     t2 = read_table(run_predict(cfg2, tmp_path / "gpc"))
     assert np.allclose(np.sort(t2["radius_deg"]), np.sort(t["radius_deg"]))
+
+
+def test_images_that_only_touch_the_sphere_give_no_circle():
+    # cubic torus of side sqrt(2) chi: edge images at d = 2 chi only touch the sphere (cos a = 1,
+    # CSS 1998), so just the three face pairs at cos a = sqrt(2)/2 (45 deg) remain
+    import math
+    from pipeline.topology.manifolds import build_space
+    from pipeline.topology.circles import predict_circles
+    t = predict_circles(build_space("E1", [math.sqrt(2)] * 3))
+    assert len(t) == 3
+    assert all(abs(float(r) - 45.0) < 1e-6 for r in t["radius_deg"])

@@ -53,7 +53,7 @@ def predict_pairs(space: Space, max_distance=2.0):
     x0 = space.observer
     rows = []
     for label, g, d in elements_within(space, max_distance):
-        if d < 1e-12:
+        if d < 1e-12 or d >= max_distance - 1e-9:   # images that only touch the sphere give no circle
             continue
         u1 = g(x0) - x0
         u2 = g.inverse()(x0) - x0
