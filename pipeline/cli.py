@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 import time
 
@@ -78,6 +79,9 @@ def _resolve(dotted):
 
 
 def main(argv=None) -> int:
+    # healpy's OpenMP transforms: one thread unless the user says otherwise, so that results do not
+    # depend on the backend's process layout, and a loaded machine is not made to spin-wait
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
     from .config import InputError
 
     parser = build_parser()

@@ -8,7 +8,10 @@ L sqrt(2)/2 (edges) (Cornish, Spergel & Starkman 1998, CQG 15, 2657).
 """
 from __future__ import annotations
 
+import os
 import types
+
+os.environ.setdefault("OMP_NUM_THREADS", "1")   # as the command line does (pipeline/cli.py)
 
 import numpy as np
 import healpy as hp
