@@ -57,6 +57,7 @@ class MapSection:
 class PrepareSection:
     nside: int = _f(64, "int", min=1, pow2=True)
     fwhm_deg: float = _f(3.0, "float", min=0.0)
+    input_fwhm_deg: float = _f(0.0, "float", min=0.0)
     lmax: int = _f(128, "int", min=2)
     lmin: int = _f(2, "int", min=0)
     remove_dipole: bool = _f(True, "bool")
@@ -67,6 +68,9 @@ class PrepareSection:
             raise where("lmax", self.lmax, f"at most 3*nside-1 = {3 * self.nside - 1} for nside {self.nside}")
         if self.lmin >= self.lmax:
             raise where("lmin", self.lmin, f"below lmax = {self.lmax}")
+        if self.input_fwhm_deg > self.fwhm_deg:
+            raise where("input_fwhm_deg", self.input_fwhm_deg,
+                        f"at most fwhm_deg = {self.fwhm_deg} (the prepared beam; nothing is sharpened)")
 
 
 @dataclass(frozen=True)

@@ -9,9 +9,10 @@ Steps of :func:`prepare_map` (input: a :class:`pipeline.skymap.SkyMap` in uK, RI
 3. ``healpy.map2alm`` at ``lmax`` on the input resolution, with ``iterations``
    Jacobi iterations and healpy's bundled ring weights when they exist for the
    input Nside.  (Pixel weights would need a download; they are not used.)
-4. Multiply by the Gaussian beam ``healpy.gauss_beam(fwhm_deg)``: the input is
-   taken as unsmoothed (or at much finer resolution), and ``fwhm_deg`` is the
-   total smoothing of the prepared map.  No beam of the input is deconvolved.
+4. Bring the map to a Gaussian beam of ``fwhm_deg`` in total: multiply by
+   ``gauss_beam(fwhm_deg) / gauss_beam(input_fwhm_deg)``, where ``input_fwhm_deg``
+   is the Gaussian beam the map already has (0, the default, takes the input as
+   unsmoothed; it must not exceed ``fwhm_deg``, so nothing is sharpened).
 5. High-pass: ``a_lm = 0`` for ``l < lmin``.
 6. No pixel window is applied or removed, either for the input or for the output
    Nside: the search evaluates rings from the ``alm`` at exact positions, so the
@@ -128,10 +129,13 @@ def remove_monopole_dipole(values, mask, nest=False, nthreads=1):
     return cleaned, coeffs
 
 
-def beam_and_highpass(lmax, fwhm_deg, lmin=0):
-    """Window ``b_l`` (l = 0..lmax): Gaussian beam of ``fwhm_deg`` times a cut below ``lmin``."""
+def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_fwhm_deg=0.0):
+    """Window ``b_l`` (l = 0..lmax): from a Gaussian beam of ``input_fwhm_deg`` to one of ``fwhm_deg``,
+    times a cut below ``lmin``."""
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else np.ones(lmax + 1)
     bl = np.array(bl, dtype=np.float64)
+    if input_fwhm_deg > 0:
+        bl /= hp.gauss_beam(math.radians(input_fwhm_deg), lmax=lmax)
     bl[: max(0, min(lmin, lmax + 1))] = 0.0
     return bl
 
@@ -199,9 +203,10 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
     del cleaned
     notes.append(f"map2alm at lmax {lmax} from Nside {nside_in}, {prep.iterations} iteration(s)"
                  + (", ring weights" if weighted else ", no ring weights"))
-    bl = beam_and_highpass(lmax, prep.fwhm_deg, prep.lmin)
+    bl = beam_and_highpass(lmax, prep.fwhm_deg, prep.lmin, prep.input_fwhm_deg)
     hp.almxfl(alm, bl, inplace=True)
-    notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg; l < {prep.lmin} removed")
+    notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg in total (input beam {prep.input_fwhm_deg} deg); "
+                 f"l < {prep.lmin} removed")
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
     for n in notes:

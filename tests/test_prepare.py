@@ -256,3 +256,28 @@ def test_load_and_prepare_without_map_path():
     with pytest.raises(InputError) as e:
         load_and_prepare(cfg)
     assert str(e.value).startswith("run.yaml: map.path") and "allowed:" in str(e.value)
+
+
+def test_input_beam_is_taken_into_account():
+    # a map already smoothed by a 2 deg Gaussian beam, prepared to 3 deg in total, equals the
+    # unsmoothed map prepared to 3 deg (Gaussian beams compose: b_3 = (b_3 / b_2) b_2; healpy.gauss_beam)
+    from pipeline.config import PrepareSection
+    from pipeline.prepare import prepare_map
+    from pipeline.skymap import SkyMap
+    import healpy as hp
+    import numpy as np
+    nside, lmax = 32, 64
+    ell = np.arange(lmax + 1)
+    rng = np.random.default_rng(3)
+    alm = (rng.normal(size=hp.Alm.getsize(lmax)) + 1j * rng.normal(size=hp.Alm.getsize(lmax))) * 10
+    alm[hp.Alm.getidx(lmax, ell, 0)] = alm[hp.Alm.getidx(lmax, ell, 0)].real
+    raw = hp.alm2map(alm, nside, lmax=lmax)
+    smoothed = hp.alm2map(hp.almxfl(alm, hp.gauss_beam(np.radians(2.0), lmax=lmax)), nside, lmax=lmax)
+    ones = np.ones(raw.size)
+
+    def sky(v):
+        return SkyMap(values=v, mask=ones, nside=nside, unit_in="uK", frame=None, checksum="", notes=[])
+    a = prepare_map(sky(raw), PrepareSection(nside=nside, lmax=lmax, fwhm_deg=3.0, remove_dipole=False))
+    b = prepare_map(sky(smoothed), PrepareSection(nside=nside, lmax=lmax, fwhm_deg=3.0, input_fwhm_deg=2.0,
+                                                  remove_dipole=False))
+    np.testing.assert_allclose(b.map, a.map, atol=1e-6 * np.abs(a.map).max())
