@@ -106,7 +106,9 @@ def data_spectrum(prepared, prep) -> np.ndarray:
     if fsky <= 0:
         raise InputError("prepared map: no valid pixel; allowed: a map with some valid pixels")
     pseudo = hp.anafast(prepared.map * (mask > 0.5), lmax=lmax, pol=False) / fsky
-    win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0)
+    # the window prepare applied (from the input map's beam to the target beam): dividing it out
+    # gives the spectrum of the input map, instrument beam included, which prepare then re-applies
+    win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, prep.input_fwhm_deg)
     cl = np.zeros(lmax + 1)
     ok = win**2 > 1e-12
     cl[ok] = pseudo[ok] / win[ok] ** 2
@@ -450,6 +452,8 @@ def sky_spectrum(cfg, prepared) -> np.ndarray:
     else:
         cl = file_spectrum(c.spectrum_file, lmax)
     cl = np.asarray(cl, float)[: lmax + 1].copy()
+    if cfg.prepare.input_fwhm_deg > 0:   # sky spectra seen through the input map's own beam
+        cl *= hp.gauss_beam(math.radians(cfg.prepare.input_fwhm_deg), lmax=lmax)[: cl.size] ** 2
     return cl
 
 
