@@ -48,6 +48,11 @@ class SearchPlan:
     threads: int
     grid_deg: float                  # centre spacing, for suppression and refinement
     key: str = ""                    # identity of the plan (for ring caches)
+    method: str = "exhaustive"       # general family: 'fast' scans only the screen's survivors (pipeline.screen)
+    screen_partners: int = 64        # fast: best partners kept per centre and radius
+    screen_mmax: int = 0             # fast: highest m of the screen (0 = from the ring power)
+    memory_gb: float = 4.0           # fast: memory for the screen's blocked products
+    screen: dict = field(default_factory=dict)   # fast: what the screen is and its reference survival
 
     def chunk_ids(self):
         return [(ir, ib) for ir in range(len(self.radii_deg)) for ib in range(len(self.blocks))]
@@ -104,6 +109,8 @@ def make_plan(prepared, scfg, compute=None, listed_table=None, key="") -> Search
             first = np.arange(n)
             frac = max((sep_cos[1] - sep_cos[0]) / 2, 1e-6)
             per_block = max(1, int(TARGET_PAIRS_PER_CHUNK / max(1.0, n * frac / 2)))
+            if scfg.method == "fast":
+                per_block = n      # the screen sees all pairs of a radius at once: one chunk per radius
     blocks = tuple(first[lo:lo + per_block] for lo in range(0, first.size, per_block))
     threads = 1 if compute is None else max(1, compute.threads or 1)
     return SearchPlan(
@@ -111,7 +118,18 @@ def make_plan(prepared, scfg, compute=None, listed_table=None, key="") -> Search
         nsamp=nsamp, family=scfg.family, blocks=blocks, partner=partner, sep_cos=sep_cos,
         weighting=scfg.weighting, min_valid_fraction=scfg.min_valid_fraction, keep=scfg.keep_per_radius,
         threads=threads, grid_deg=(scfg.suppress_deg or grid), key=key,
+        **_screen_fields(scfg, compute),
     )
+
+
+def _screen_fields(scfg, compute):
+    if scfg.family != "general" or scfg.method != "fast":
+        return {}
+    from . import screen
+
+    return dict(method="fast", screen_partners=scfg.screen_partners, screen_mmax=scfg.screen_mmax,
+                memory_gb=(compute.memory_gb if compute is not None else 4.0),
+                screen=screen.describe(scfg.nside_centers, scfg.screen_partners))
 
 
 def count_pairs(plan: SearchPlan) -> int:
@@ -119,10 +137,23 @@ def count_pairs(plan: SearchPlan) -> int:
     return sum(_block_pairs(plan, ib)[0].size for ib in range(len(plan.blocks)))
 
 
-def _block_pairs(plan: SearchPlan, ib):
+def _block_pairs(plan: SearchPlan, ib, ir=None):
+    """Pairs (i, j) of block ``ib``; with ``ir`` and ``method == 'fast'`` (general family), only the
+    pairs that pass the screen at radius index ``ir``."""
     first = plan.blocks[ib]
     if plan.family in ("antipodal", "listed"):
         return first, plan.partner[first]
+    if plan.method == "fast" and ir is not None:
+        from . import screen
+
+        i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
+                                   plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb)
+        if first.size != plan.centres.shape[0]:
+            inb = np.zeros(plan.centres.shape[0], dtype=bool)
+            inb[first] = True
+            sel = inb[i]
+            i, j = i[sel], j[sel]
+        return i, j
     c = plan.centres
     lo, hi = plan.sep_cos
     ii, jj = [], []
@@ -158,7 +189,7 @@ def ring_set(plan: SearchPlan, ir):
 def scan_chunk(plan: SearchPlan, chunk) -> ChunkResult:
     ir, ib = chunk
     spec = ring_set(plan, ir)
-    i, j = _block_pairs(plan, ib)
+    i, j = _block_pairs(plan, ib, ir)
     s, k = scan_pairs(spec, i, spec, j, plan.min_valid_fraction, workers=plan.threads)
     peak_s = np.full(2, -np.inf)
     peak_idx = np.zeros((2, 3), dtype=np.int64)
