@@ -480,8 +480,13 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
                       listed=listed, seed=int(cfg.calibrate.seed), frame=sky.frame, key=h.hexdigest()[:16])
 
 
-def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=None, log=None) -> np.ndarray:
-    """Grid peaks of simulations 0..n-1: array (n, n_radii, 2).
+SIM_TAG = "sims"
+CAL_SHARD = "calibrate_shard.json"
+
+
+def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=None, log=None,
+                    shard=None) -> np.ndarray:
+    """Grid peaks of simulations 0..n-1: array (n, n_radii, 2) (with ``shard``: only that shard's, in order).
 
     With ``store_dir`` each simulation's peaks are kept in ``store_dir/sims/``
     under the setup key, so an interrupted calibration resumes and a larger
@@ -490,8 +495,71 @@ def run_simulations(ctx: SimContext, n, compute=None, store_dir=None, progress=N
     from .execute import run_units
 
     res = run_units(null_peaks, ctx, list(range(int(n))), compute=compute, store_dir=store_dir,
-                    tag="sims", key=ctx.key, progress=progress, log=log)
-    return np.stack([np.asarray(res[i], float) for i in range(int(n))])
+                    tag=SIM_TAG, key=ctx.key, progress=progress, log=log, shard=shard)
+    return np.stack([np.asarray(res[i], float) for i in sorted(res)])
+
+
+def calibrate_shard(cfg, run, sky, prepared, shard):
+    """Only the simulations of ``shard`` (K, N), stored in the run dir with a manifest; no thresholds."""
+    import json
+
+    from .execute import shard_units
+    from .results import write_text
+    from .stages import listed_pairs
+
+    ctx = make_context(cfg, sky, prepared, listed_pairs(cfg))
+    n = int(cfg.calibrate.simulations)
+    peaks = run_simulations(ctx, n, compute=cfg.compute, store_dir=run.dir, progress=run.progress,
+                            log=run.log, shard=shard)
+    mine = [int(u) for u in shard_units(list(range(n)), shard)]
+    write_text(run.dir / CAL_SHARD, json.dumps({"setup": ctx.key, "config_hash": cfg.hash(), "shard": list(shard),
+                                                "simulations": n, "units": mine}) + "\n")
+    return [f"calibration shard {shard[0]}/{shard[1]}: {peaks.shape[0]} of {n} simulations stored in {run.dir};"
+            f" combine the shards with `twinring merge DIR... --out DIR`"]
+
+
+def merge_calibration_shards(dirs, out, force=False):
+    """Collect the simulations of every calibration shard into ``out`` and calibrate there (no sim is rerun)."""
+    import json
+
+    from . import execute
+    from .config import load_config
+    from .rundir import CONFIG_NAME, open_run
+
+    mans = []
+    for d in dirs:
+        p = Path(d) / CAL_SHARD
+        if not p.exists():
+            raise InputError(f"{d}: no {CAL_SHARD}; allowed: output directories of `twinring calibrate --shard K/N`")
+        mans.append((Path(d), json.loads(p.read_text())))
+    d0, m0 = mans[0]
+    seen = {}
+    for d, m in mans:
+        if (m["setup"], m["config_hash"], m["shard"][1]) != (m0["setup"], m0["config_hash"], m0["shard"][1]):
+            raise InputError(f"{d}: calibration shard of another config or split (setup {m['setup']}, shard "
+                             f"{m['shard'][0]}/{m['shard'][1]}) than {d0}; allowed: shards of one config and split")
+        if m["shard"][0] in seen:
+            raise InputError(f"{d}: duplicate calibration shard {m['shard'][0]}/{m['shard'][1]} (also in "
+                             f"{seen[m['shard'][0]]}); allowed: each shard once")
+        seen[m["shard"][0]] = d
+    n_shards = m0["shard"][1]
+    missing = [k for k in range(n_shards) if k not in seen]
+    if missing:
+        raise InputError(f"merge: calibration shard(s) {', '.join(f'{k}/{n_shards}' for k in missing)} missing; "
+                         f"allowed: one directory for each shard 0/{n_shards} .. {n_shards - 1}/{n_shards}")
+    cfg = load_config(d0 / CONFIG_NAME)
+    got = {}
+    for d, m in mans:
+        units = execute.load_units(d, SIM_TAG, m["units"], m0["setup"])
+        lost = [u for u in m["units"] if u not in units]
+        if lost:
+            raise InputError(f"{d}: simulation {lost[0]} of calibration shard {m['shard'][0]}/{n_shards} missing or "
+                             f"damaged; allowed: rerun that shard")
+        got.update(units)
+    run = open_run(cfg, out, force, "merge")
+    for u, res in got.items():
+        execute.store_unit(run.dir, SIM_TAG, u, res, m0["setup"])
+    return run, calibrate_run(cfg, run)
 
 
 def load_data(cfg):
@@ -577,7 +645,15 @@ def cmd_calibrate(args):
     cfg = load_run_config(args)
     if cfg.calibrate.spectrum == "file":
         file_spectrum(cfg.calibrate.spectrum_file, int(cfg.prepare.lmax))
+    shard = None
+    if getattr(args, "shard", None):
+        from .execute import parse_shard
+
+        shard = parse_shard(args.shard)
     sky, prepared = load_data(cfg)              # bad inputs fail before the output dir is touched
     run = open_run(cfg, args.out, args.force, "calibrate")
-    run.finish(calibrate_run(cfg, run, sky, prepared))
+    if shard is not None:
+        run.finish(calibrate_shard(cfg, run, sky, prepared, shard))
+    else:
+        run.finish(calibrate_run(cfg, run, sky, prepared))
     return 0

@@ -24,7 +24,7 @@ def _config_arg(p):
 
 def _shard_args(p):
     _config_arg(p)
-    p.add_argument("--shard", metavar="K/N", help="run only shard K of N (K = 0 .. N-1) of the chunks")
+    p.add_argument("--shard", metavar="K/N", help="run only shard K of N (K = 0 .. N-1) of the work units")
 
 
 def _merge_args(p):
@@ -40,7 +40,7 @@ def _report_args(p):
 COMMANDS = [
     ("search", "scan a map for matched circle pairs -> candidates.ecsv, peaks.ecsv", _shard_args,
      "pipeline.stages:cmd_search"),
-    ("merge", "combine the output dirs of `search --shard K/N` runs into the tables of one run", _merge_args,
+    ("merge", "combine the output dirs of `search --shard K/N` or `calibrate --shard K/N` runs into one run", _merge_args,
      "pipeline.stages:cmd_merge"),
     ("prepare", "prepare a map (dipole removal, band limit, beam) -> prepared.fits", _config_arg,
      "pipeline.stages:cmd_prepare"),
@@ -48,7 +48,7 @@ COMMANDS = [
      "pipeline.topology.stages:cmd_predict"),
     ("sky", "a synthetic sky of a flat topology -> sky.fits (uK), mask.fits, circles.ecsv", _config_arg,
      "pipeline.topology.stages:cmd_sky"),
-    ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _config_arg, "pipeline.calibrate:cmd_calibrate"),
+    ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _shard_args, "pipeline.calibrate:cmd_calibrate"),
     ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "pipeline.inject:cmd_inject"),
     ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "pipeline.bound:cmd_bound"),
     ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "pipeline.report:cmd_report"),

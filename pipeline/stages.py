@@ -120,7 +120,12 @@ def cmd_search(args):
 def cmd_merge(args):
     """Combine finished shard directories into the tables of an unsplit run."""
     from . import merge as merge_mod
+    from . import calibrate
 
+    if (Path(args.dirs[0]) / calibrate.CAL_SHARD).exists():
+        run, lines = calibrate.merge_calibration_shards(args.dirs, args.out, getattr(args, "force", False))
+        run.finish(lines)
+        return 0
     run, plan, pool, cand, peaks = merge_mod.merge_shards(args.dirs, args.out, getattr(args, "force", False))
     run.finish(summary_lines(cand, pool, plan))
     return 0
