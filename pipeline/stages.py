@@ -79,6 +79,8 @@ def search_prepared(cfg, run, prepared, runner=None):
     meta = provenance(cfg, input_files(cfg), "search")
     meta.update(family=cfg.search.family, weighting=cfg.search.weighting, pairs_per_radius=int(pool.pairs_scanned // max(1, len(plan.radii_deg))),
                 twist_convention="circle 1 at phase phi matches circle 2 at phi + twist (flip false) or twist - phi (flip true)")
+    meta.update({f"screen_{k}" if not k.startswith("screen") else k: v
+                 for k, v in getattr(plan, "screen", {}).items() if v is not None})
     write_table(cand, run.dir / "candidates.ecsv", meta)
     write_table(peaks, run.dir / "peaks.ecsv", meta)
     return plan, pool, cand, peaks
