@@ -43,15 +43,20 @@ requirement with any partner and are dropped before the products.
 
 Cost and memory
 ---------------
-All pairs of one radius are scored by float32 matrix products, ``BLOCK_ROWS``
-rows of centres against all centres at a time (fewer rows when
-``compute.memory_gb`` demands it); per block, the per-row threshold of the K-th
-best partner is estimated from a strided sample of columns, every entry is
-compared once against it and the exact top K is taken among the few entries
-that pass.  Pairs outside the separation range are excluded with precomputed
-per-centre lists (discs about the centre and its antipode), checked with the
-same inclusive test as :func:`pipeline.search._block_pairs`, so the survivors
-are always a subset of the exhaustive pair set.
+All pairs of one radius are scored by float32 matrix products (BLAS), each pair
+once: ``BLOCK_ROWS`` rows of centres against the centres from the block's first
+row on (fewer rows when ``compute.memory_gb`` demands it).  Beforehand, every
+centre's level is set from a strided sample of its partners so that it has, with
+a margin, more than K partners above it; in each block every score is compared
+once with its row's and its column's level, the few that pass are kept, and the
+exact top K per centre is taken among them at the end (centres that fall short
+are redone exactly, so the result is always exactly the top-K rule).  Pairs
+outside the separation range are excluded with precomputed per-centre lists
+(discs about the centre and its antipode), checked with the same inclusive test
+as :func:`pipeline.search._block_pairs`, so the survivors are always a subset of
+the exhaustive pair set.  Memory: the features (n x D float32), one block of
+scores and two boolean masks, the candidates (~3.5 K per centre) and the
+separation lists; about 1 GB at nside_centers 64.
 """
 from __future__ import annotations
 
