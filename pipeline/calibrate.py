@@ -524,6 +524,7 @@ def merge_calibration_shards(dirs, out, force=False):
 
     from . import execute
     from .config import load_config
+    from .merge import load_shard_units
     from .rundir import CONFIG_NAME, open_run
 
     mans = []
@@ -550,12 +551,8 @@ def merge_calibration_shards(dirs, out, force=False):
     cfg = load_config(d0 / CONFIG_NAME)
     got = {}
     for d, m in mans:
-        units = execute.load_units(d, SIM_TAG, m["units"], m0["setup"])
-        lost = [u for u in m["units"] if u not in units]
-        if lost:
-            raise InputError(f"{d}: simulation {lost[0]} of calibration shard {m['shard'][0]}/{n_shards} missing or "
-                             f"damaged; allowed: rerun that shard")
-        got.update(units)
+        got.update(load_shard_units(d, SIM_TAG, m["units"], m0["setup"],
+                                    f"calibration shard {m['shard'][0]}/{n_shards}", "simulation"))
     run = open_run(cfg, out, force, "merge")
     for u, res in got.items():
         execute.store_unit(run.dir, SIM_TAG, u, res, m0["setup"])

@@ -230,6 +230,16 @@ def load_prepared_for_merge(cfg, dirs):
     return prep_mod.load_and_prepare(cfg), None
 
 
+def load_shard_units(d, tag, units, key, shard_label, what):
+    """Every stored unit of one shard directory, or a one-line error naming the first one lost."""
+    got = execute.load_units(d, tag, units, key)
+    lost = [u for u in units if u not in got]
+    if lost:
+        raise InputError(f"{d}: {len(lost)} {what} file(s) of {shard_label} missing or damaged "
+                         f"(first {execute.unit_path(d, tag, lost[0]).name}); allowed: rerun that shard")
+    return got
+
+
 def merge_shards(dirs, out, force=False, progress=True):
     """Merge finished shard directories into ``out``: the tables an unsplit run writes. Returns the stages tuple."""
     from . import search as search_mod
@@ -251,12 +261,7 @@ def merge_shards(dirs, out, force=False, progress=True):
                          f"were made with {key}; allowed: shard directories left as `twinring search` wrote them")
     results = {}
     for d, m in mans:
-        got = execute.load_units(d, CHUNK_TAG, m["units"], key)
-        lost = [u for u in m["units"] if u not in got]
-        if lost:
-            raise InputError(f"{d}: {len(lost)} chunk file(s) of shard {m['shard'][0]}/{n} missing or damaged "
-                             f"(first {execute.unit_path(d, CHUNK_TAG, lost[0]).name}); allowed: rerun that shard")
-        results.update(got)
+        results.update(load_shard_units(d, CHUNK_TAG, m["units"], key, f"shard {m['shard'][0]}/{n}", "chunk"))
     run = open_run(cfg, out, force, "merge")
     run.log(f"merging {n} shard(s): " + ", ".join(str(d) for d, _ in mans))
     prep_mod.write_prepared(prepared, run.dir, provenance(cfg, stages.input_files(cfg), "prepare"))
