@@ -23,7 +23,7 @@ Spaces smaller than the campaign's smallest size have larger and more circles
 and are taken as excluded too.
 
 chi (Gpc): ``bound.chi_gpc``, or the comoving distance to last scattering of
-the ``cosmology`` section (pipeline.cosmology.chi_ls_gpc).
+the ``cosmology`` section (twinring.cosmology.chi_ls_gpc).
 """
 from __future__ import annotations
 

@@ -37,7 +37,7 @@ Spectra (``calibrate.spectrum``)
   the prepare step puts them back.  The data's noise is part of this spectrum:
   leave ``calibrate.noise_uk_arcmin`` at 0 unless the noise must be added on
   top.  The f_sky correction ignores mode coupling by the mask.
-* ``theory``: CAMB's TT spectrum of the ``cosmology`` section (pipeline.cosmology).
+* ``theory``: CAMB's TT spectrum of the ``cosmology`` section (twinring.cosmology).
 * ``file``: a table with columns l and C_l in uK^2 (ECSV/FITS with columns
   named ``l``/``ell`` and ``cl``/``c_l``/``C_l``/``tt``, or two plain-text columns).
 
@@ -187,7 +187,7 @@ def sim_rng(seed, index) -> np.random.Generator:
 
 
 def simulate_sky(ctx: SimContext, index) -> SkyMap:
-    """Simulated input map i (uK, RING, masked) as a SkyMap for :func:`pipeline.prepare.prepare_map`."""
+    """Simulated input map i (uK, RING, masked) as a SkyMap for :func:`twinring.prepare.prepare_map`."""
     rng = sim_rng(ctx.seed, index)
     lmax = int(ctx.prep.lmax)
     alm = gaussian_alm(ctx.cl, lmax, rng)

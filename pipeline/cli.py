@@ -4,7 +4,7 @@ Each subcommand is one row of ``COMMANDS``: its name, one-line help, a function
 adding its arguments and the dotted path of its handler (imported only when the
 subcommand runs, so ``--help`` stays fast).  A handler takes the parsed
 arguments and returns an exit status.  Bad input of any kind is an
-:class:`~pipeline.config.InputError`, printed as one line on stderr with exit
+:class:`~twinring.config.InputError`, printed as one line on stderr with exit
 status 2 and no traceback.
 """
 from __future__ import annotations
@@ -39,20 +39,20 @@ def _report_args(p):
 
 COMMANDS = [
     ("search", "scan a map for matched circle pairs -> candidates.ecsv, peaks.ecsv", _shard_args,
-     "pipeline.stages:cmd_search"),
+     "twinring.stages:cmd_search"),
     ("merge", "combine the output dirs of `search --shard K/N` or `calibrate --shard K/N` runs into one run", _merge_args,
-     "pipeline.stages:cmd_merge"),
+     "twinring.stages:cmd_merge"),
     ("prepare", "prepare a map (dipole removal, band limit, beam) -> prepared.fits", _config_arg,
-     "pipeline.stages:cmd_prepare"),
+     "twinring.stages:cmd_prepare"),
     ("predict", "circle pairs a flat topology must show -> circles.ecsv", _config_arg,
-     "pipeline.topology.stages:cmd_predict"),
+     "twinring.topology.stages:cmd_predict"),
     ("sky", "a synthetic sky of a flat topology -> sky.fits (uK), mask.fits, circles.ecsv", _config_arg,
-     "pipeline.topology.stages:cmd_sky"),
-    ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _shard_args, "pipeline.calibrate:cmd_calibrate"),
-    ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "pipeline.inject:cmd_inject"),
-    ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "pipeline.bound:cmd_bound"),
-    ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "pipeline.report:cmd_report"),
-    ("run", "every configured stage in order into one directory (unchanged stages skipped)", _config_arg, "pipeline.workflow:cmd_run"),
+     "twinring.topology.stages:cmd_sky"),
+    ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _shard_args, "twinring.calibrate:cmd_calibrate"),
+    ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "twinring.inject:cmd_inject"),
+    ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "twinring.bound:cmd_bound"),
+    ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "twinring.report:cmd_report"),
+    ("run", "every configured stage in order into one directory (unchanged stages skipped)", _config_arg, "twinring.workflow:cmd_run"),
 ]
 
 

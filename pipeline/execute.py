@@ -17,7 +17,7 @@ Backends (``compute.backend``)
 Store and resume
     With ``store_dir``, every finished unit is pickled to
     ``store_dir/<tag>/<name>.pkl`` (name from the unit id, see
-    :func:`unit_filename`) through :func:`pipeline.results.atomic_path`: a
+    :func:`unit_filename`) through :func:`twinring.results.atomic_path`: a
     temporary file renamed into place, so a final name never holds a
     half-written file.  The file records the unit id and the ``key`` of the
     work (e.g. a hash of the search plan); a later call with the same key loads

@@ -40,7 +40,7 @@ Detection (``inject.mode``)
     centres within ``centre_tol_deg`` of a target's (0: 2.5 centre-grid steps)
     and a radius within ``radius_tol_deg`` reaches the threshold at its radius.
     Thresholds are the calibration's at ``inject.false_alarm``: global (the
-    look-elsewhere-corrected level of pipeline.calibrate) or local.
+    look-elsewhere-corrected level of twinring.calibrate) or local.
 
 Instrument: white noise of ``inject.noise_uk_arcmin`` and a Gaussian beam of
 ``inject.beam_fwhm_deg`` (the instrument's, applied before ``prepare`` adds its
@@ -165,7 +165,7 @@ class InjectContext:
     shape: SpaceShape
     sizes: tuple
     random_orientation: bool
-    recipe: object                 # pipeline.topology.skies.SkyRecipe (lmax = prepare.lmax, no beam)
+    recipe: object                 # twinring.topology.skies.SkyRecipe (lmax = prepare.lmax, no beam)
     beam_fwhm_deg: float           # instrument beam applied before the data's processing
     cosmo: object
     nside: int

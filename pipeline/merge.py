@@ -1,7 +1,7 @@
 """Search chunks on disk: the chunk store of a run, shard manifests, and merging shards.
 
 A search run keeps every finished chunk in ``<run dir>/chunks/`` (see
-:mod:`pipeline.execute`) and writes ``shard.json``, the manifest::
+:mod:`twinring.execute`) and writes ``shard.json``, the manifest::
 
     {"work_key": ..., "config_hash": ..., "shard": [K, N], "units_total": ...,
      "units": [[ir, ib], ...], "done": [[ir, ib], ...], "complete": true, ...}
@@ -158,7 +158,7 @@ def run_chunks(plan, cfg, run, shard=None):
 
 
 def chunk_runner(cfg, run, stats_out=None):
-    """A ``runner(plan, chunks)`` for :func:`pipeline.search.run_search` that stores and resumes chunks."""
+    """A ``runner(plan, chunks)`` for :func:`twinring.search.run_search` that stores and resumes chunks."""
 
     def runner(plan, chunks):
         res = run_chunks(plan, cfg, run)

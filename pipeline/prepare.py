@@ -1,6 +1,6 @@
 """Prepare a sky map for the circle search: monopole/dipole removal, band limit, beam, resolution.
 
-Steps of :func:`prepare_map` (input: a :class:`pipeline.skymap.SkyMap` in uK, RING):
+Steps of :func:`prepare_map` (input: a :class:`twinring.skymap.SkyMap` in uK, RING):
 
 1. If ``prepare.remove_dipole``: fit monopole + dipole by least squares on the
    unmasked pixels and subtract it there (:func:`remove_monopole_dipole`).

@@ -20,12 +20,7 @@ from astropy.table import Table
 
 from .config import InputError
 
-try:
-    from importlib.metadata import version as _pkg_version
-
-    TOOL_VERSION = _pkg_version("twinring")
-except Exception:  # running from a source tree that is not installed
-    TOOL_VERSION = "0.1.0+src"
+from . import __version__ as TOOL_VERSION
 
 
 @contextlib.contextmanager

@@ -10,7 +10,7 @@ The screen statistic
 --------------------
 A matched pair has ring 2 equal to ring 1 turned by the twist, traversed in the
 same or the opposite sense: with b_m the sqrt(|m|)-weighted Fourier coefficients
-of a ring (:class:`pipeline.statistic.RingSpectra`), b2_m = b1_m e^{i m beta}
+of a ring (:class:`twinring.statistic.RingSpectra`), b2_m = b1_m e^{i m beta}
 (flip false) or conj(b1_m) e^{i m beta} (flip true).  Two families of features
 are unchanged by both:
 
@@ -37,7 +37,7 @@ dimensions, so unrelated rings scatter much less while matched rings still
 agree.  Measured figures are in ``REFERENCE_CAMPAIGN``.
 
 Masked rings enter with the spectra of their zero-filled, filtered samples (the
-``b`` of :func:`pipeline.statistic.ring_spectra`); rings with fewer valid samples
+``b`` of :func:`twinring.statistic.ring_spectra`); rings with fewer valid samples
 than ``min_valid_fraction`` of the ring cannot reach the exact kernel's overlap
 requirement with any partner and are dropped before the products.
 
@@ -53,7 +53,7 @@ exact top K per centre is taken among them at the end (centres that fall short
 are redone exactly, so the result is always exactly the top-K rule).  Pairs
 outside the separation range are excluded with precomputed per-centre lists
 (discs about the centre and its antipode), checked with the same inclusive test
-as :func:`pipeline.search._block_pairs`, so the survivors are always a subset of
+as :func:`twinring.search._block_pairs`, so the survivors are always a subset of
 the exhaustive pair set.  Memory: the features (n x D float32), one block of
 scores and two boolean masks, the candidates (~3.5 K per centre) and the
 separation lists; about 1 GB at nside_centers 64.
@@ -70,7 +70,7 @@ TRIPLE_DIM = 320          # triple products kept (lowest m + n first)
 TRIPLE_POWER = 0.5        # each triple product divided by |product| ** TRIPLE_POWER
 AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlation
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
-SEP_TOL = 1e-12           # the same inclusive tolerance as pipeline.search._block_pairs
+SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
 
 # Survival of injected pairs through the screen, measured with

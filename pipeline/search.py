@@ -9,7 +9,7 @@ candidates, refines the survivors off the grid (centres, radius, twist) and
 returns the candidate and peak tables.
 
 Rings are sampled in the reference phase frame of every centre (the
-back-to-back rule of :mod:`pipeline.rings`), so one ring set per radius serves
+back-to-back rule of :mod:`twinring.rings`), so one ring set per radius serves
 every pair; twists are converted to the pair convention at the end.
 """
 from __future__ import annotations
@@ -48,7 +48,7 @@ class SearchPlan:
     threads: int
     grid_deg: float                  # centre spacing, for suppression and refinement
     key: str = ""                    # identity of the plan (for ring caches)
-    method: str = "exhaustive"       # general family: 'fast' scans only the screen's survivors (pipeline.screen)
+    method: str = "exhaustive"       # general family: 'fast' scans only the screen's survivors (twinring.screen)
     screen_partners: int = 64        # fast: best partners kept per centre and radius
     screen_mmax: int = 0             # fast: highest m of the screen (0 = from the ring power)
     memory_gb: float = 4.0           # fast: memory for the screen's blocked products

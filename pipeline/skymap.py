@@ -23,10 +23,10 @@ Reading (:func:`load_map`)
       threshold) and a note records it.  Mask and map declaring different
       ``COORDSYS`` frames is an error.
 
-Every bad input raises :class:`pipeline.config.InputError` with one line
+Every bad input raises :class:`twinring.config.InputError` with one line
 ``"<path>: <what was found>; allowed: <what is allowed>"``.
 
-Writing (:func:`write_map`) goes through :func:`pipeline.results.atomic_path`.
+Writing (:func:`write_map`) goes through :func:`twinring.results.atomic_path`.
 """
 from __future__ import annotations
 

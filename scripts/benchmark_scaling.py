@@ -4,8 +4,8 @@ The sky is made here: a Gaussian field with P(k) ~ k^-3 (Sachs-Wolfe-like,
 n_s = 1), periodic on a cubic 3-torus of side ``--side`` (in units of the
 last-scattering distance), evaluated on the unit sphere with finufft.  The
 search (general family, all pairs of centres in the separation range) is run
-in this process through ``pipeline.search.run_search`` with the chunk runner
-``pipeline.execute.run_units``, once per worker count; the time covers plan,
+in this process through ``twinring.search.run_search`` with the chunk runner
+``twinring.execute.run_units``, once per worker count; the time covers plan,
 every chunk, combine and finalize.  With one worker the chunks run in this
 process (no pool); with two, a joblib (loky) pool is started inside the timed
 call.  The tables of every run are checked to be identical.
@@ -56,10 +56,10 @@ def main():
     ap.add_argument("--refine", action="store_true", help="include the (serial) refinement of candidates")
     args = ap.parse_args()
 
-    from pipeline import search
-    from pipeline.config import config_from_dict
-    from pipeline.prepare import prepare_map
-    from pipeline.skymap import SkyMap
+    from twinring import search
+    from twinring.config import config_from_dict
+    from twinring.prepare import prepare_map
+    from twinring.skymap import SkyMap
 
     m = torus_sky(args.side, args.nside, kmax=2.0 * args.lmax, seed=2024)
     sky = SkyMap(values=m, mask=np.ones_like(m), nside=args.nside, unit_in="uK", frame=None, checksum="synthetic")
@@ -82,7 +82,7 @@ def main():
         stats = []
 
         def runner(plan, chunks, cfg=cfg):
-            from pipeline.execute import run_units
+            from twinring.execute import run_units
 
             res = run_units(search.scan_chunk, plan, chunks, compute=cfg.compute, tag="chunks",
                             log=lambda msg: None)

@@ -14,7 +14,7 @@ including refinement).
 ``--campaign N``: instead, the survival of injected pairs through the screen on N torus and N
 half-turn skies (random sizes, rotations and observers) at the given nside_centers values:
 for every injected pair that the exhaustive search detects (best grid-pair S above --s-min),
-the screen rank of that grid pair (pipeline.screen.known_pair_ranks); survival at K partners is
+the screen rank of that grid pair (twinring.screen.known_pair_ranks); survival at K partners is
 the fraction with rank < K.
 
     nohup python scripts/benchmark_screen.py > /tmp/bench_screen.log 2>&1 &
@@ -33,12 +33,11 @@ import warnings
 import numpy as np
 
 HERE = os.path.dirname(os.path.abspath(__file__))
-sys.path.insert(0, os.path.dirname(HERE))
 sys.path.insert(0, os.path.join(os.path.dirname(HERE), "tests"))
 
-from pipeline import rings, screen, search  # noqa: E402
-from pipeline.config import ComputeSection, SearchSection  # noqa: E402
-from pipeline.statistic import ring_spectra, scan_pairs  # noqa: E402
+from twinring import rings, screen, search  # noqa: E402
+from twinring.config import ComputeSection, SearchSection  # noqa: E402
+from twinring.statistic import ring_spectra, scan_pairs  # noqa: E402
 
 warnings.filterwarnings("ignore", category=RuntimeWarning)
 
@@ -120,7 +119,7 @@ def campaign_skies(n, seed):
 
 # --------------------------------------------------------------------------- timed search
 def timed_search(prepared, scfg, compute):
-    """The search of pipeline.search.run_search, with the time of every chunk recorded."""
+    """The search of twinring.search.run_search, with the time of every chunk recorded."""
     t0 = time.perf_counter()
     plan = search.make_plan(prepared, scfg, compute)
     per_radius = {}

@@ -18,7 +18,7 @@ import time
 import numpy as np
 import scipy.fft
 
-from pipeline.statistic import ring_spectra, scan_pairs, SUB_BATCH
+from twinring.statistic import ring_spectra, scan_pairs, SUB_BATCH
 
 
 def best_of(fn, repeat):

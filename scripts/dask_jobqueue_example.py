@@ -125,7 +125,7 @@ def main(argv=None):
         print(f"scheduler {cluster.scheduler_address}; {args.jobs} job(s) of {args.cores} worker(s) requested; "
               f"dashboard {cluster.dashboard_link}", flush=True)
 
-        from pipeline.cli import main as twinring
+        from twinring.cli import main as twinring
 
         argv2 = ["search", str(cfg_path), "--out", str(out)] + (["--force"] if args.force else [])
         return twinring(argv2)

@@ -15,7 +15,7 @@ HERE = Path(__file__).resolve().parent
 
 
 def remake(config: Path, dest: Path) -> list[Path]:
-    from pipeline import cli
+    from twinring import cli
 
     with tempfile.TemporaryDirectory() as tmp:
         if cli.main(["sky", str(config), "--out", tmp]) != 0:

@@ -1,6 +1,6 @@
 """Bad inputs through the command line (issue 5, item 8).
 
-Each case runs ``twinring search`` (``pipeline.cli.main`` in this process, a
+Each case runs ``twinring search`` (``twinring.cli.main`` in this process, a
 few also as a real subprocess) against an output directory that already holds
 the results of a good run, and checks:
 
@@ -32,7 +32,7 @@ from astropy.io import fits
 from astropy.table import Table
 
 from conftest import periodic_field_on_sphere
-from pipeline.cli import main
+from twinring.cli import main
 
 LOG = "twinring.log"
 
@@ -258,7 +258,7 @@ def test_disk_full_while_writing_tables_keeps_earlier_results(good, capsys, monk
 
 
 def test_disk_full_at_the_first_write_changes_nothing(good, capsys, monkeypatch):
-    import pipeline.results as results
+    import twinring.results as results
 
     def nospace(fd):
         raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
@@ -281,7 +281,7 @@ def test_yaml_that_is_not_a_mapping(good, capsys, text, words):
 
 
 @pytest.mark.parametrize("tag", ["!!python/object/apply:os.system ['touch {flag}']",
-                                 "!!python/object:pipeline.config.RunConfig {{}}",
+                                 "!!python/object:twinring.config.RunConfig {{}}",
                                  "!!python/name:os.system"])
 def test_yaml_object_tags_refused(good, capsys, tag):
     flag = good["dir"] / "PWNED"
@@ -304,7 +304,7 @@ def test_subprocess_exit_status_and_single_line(good, how):
             pytest.skip("twinring console script not installed")
         cmd = [exe]
     else:
-        cmd = [sys.executable, "-m", "pipeline.cli"]
+        cmd = [sys.executable, "-m", "twinring.cli"]
     r = subprocess.run(cmd + ["search", str(p), "--out", str(good["dir"] / "sub")], capture_output=True,
                        text=True, timeout=120)
     assert r.returncode == 2

@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 from astropy.table import Table
 
-from pipeline import bound
-from pipeline.topology.manifolds import build_space
-from pipeline.topology.circles import predict_pairs
+from twinring import bound
+from twinring.topology.manifolds import build_space
+from twinring.topology.circles import predict_pairs
 
 
 def test_cubic_torus_bound_from_alpha_min_25_deg():
@@ -29,8 +29,8 @@ def test_cubic_torus_bound_from_alpha_min_25_deg():
 def test_distance_per_size_matches_the_predicted_circles():
     # the bound's size relation against the predicted circles of the same space: at size 2 cos(alpha) / d1
     # the largest back-to-back circles have radius alpha (E2 half-turn space, shape 1 : 1.2 : 0.8)
-    from pipeline import inject
-    from pipeline.config import config_from_dict
+    from twinring import inject
+    from twinring.config import config_from_dict
 
     cfg = config_from_dict({"topology": {"space": "E2", "lengths": [1.0, 1.2, 0.8]}})
     shape = inject.shape_from_config(cfg)
@@ -78,7 +78,7 @@ def test_torus_face_distance_is_the_side():
 
 def test_conservative_uses_the_interval():
     # with few realisations, 4 of 4 recovered has a 95 % Clopper-Pearson lower end of 0.40 (beta quantile)
-    from pipeline import inject
+    from twinring import inject
 
     lo4, _ = inject.binomial_interval(4, 4)
     lo60, _ = inject.binomial_interval(80, 80)   # 0.025^(1/80) = 0.955

@@ -6,7 +6,7 @@ import healpy as hp
 import pytest
 from astropy.table import Table
 
-from pipeline.config import load_config
+from twinring.config import load_config
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -13,10 +13,10 @@ import pytest
 import scipy.stats
 from astropy.table import Table
 
-from pipeline import calibrate as cal
-from pipeline import prepare, rings
-from pipeline.config import InputError, config_from_dict
-from pipeline.skymap import SkyMap
+from twinring import calibrate as cal
+from twinring import prepare, rings
+from twinring.config import InputError, config_from_dict
+from twinring.skymap import SkyMap
 
 from conftest import periodic_field_on_sphere
 

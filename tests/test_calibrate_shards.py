@@ -5,7 +5,7 @@ import numpy as np
 import yaml
 from astropy.table import Table
 
-from pipeline import cli
+from twinring import cli
 from conftest import periodic_field_on_sphere
 
 

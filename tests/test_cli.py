@@ -3,7 +3,7 @@ import pytest
 import yaml
 from astropy.table import Table
 
-from pipeline import cli
+from twinring import cli
 
 
 @pytest.mark.parametrize("name", [row[0] for row in cli.COMMANDS])

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from scipy.special import spherical_jn
 
-from pipeline import cosmology
+from twinring import cosmology
 
 
 def test_chi_default_matches_astropy_planck18():

@@ -30,12 +30,12 @@ import yaml
 from astropy.table import Table
 
 from conftest import periodic_field_on_sphere
-from pipeline import execute, merge, search
-from pipeline.cli import main
-from pipeline.config import InputError
+from twinring import execute, merge, search
+from twinring.cli import main
+from twinring.config import InputError
 
 SMALL_CHUNK = 100_000
-SETUP = ("import sys, pipeline.search as s; s.TARGET_PAIRS_PER_CHUNK = %d; from pipeline.cli import main; "
+SETUP = ("import sys, twinring.search as s; s.TARGET_PAIRS_PER_CHUNK = %d; from twinring.cli import main; "
          "sys.exit(main(sys.argv[1:]))" % SMALL_CHUNK)
 
 
@@ -324,10 +324,10 @@ def test_nested_run_units_in_a_worker_stays_serial():
 
 
 def test_combine_does_not_depend_on_chunk_order(env):
-    from pipeline import prepare
+    from twinring import prepare
 
     prepared = prepare.read_prepared(env.ref)
-    from pipeline.config import load_config
+    from twinring.config import load_config
 
     cfg = load_config(env.ref / "config.yaml")
     plan = search.make_plan(prepared, cfg.search, cfg.compute, key="t")

@@ -9,11 +9,11 @@ import healpy as hp
 import pytest
 import scipy.stats
 
-from pipeline import calibrate as cal
-from pipeline import inject, prepare
-from pipeline.config import config_from_dict
-from pipeline.skymap import SkyMap
-from pipeline.topology import skies
+from twinring import calibrate as cal
+from twinring import inject, prepare
+from twinring.config import config_from_dict
+from twinring.skymap import SkyMap
+from twinring.topology import skies
 
 NSIDE, LMAX = 32, 64
 
@@ -60,7 +60,7 @@ def test_visible_pairs_follow_the_search_family():
     # away from the screw axis of a half-turn space, some pairs are not back-to-back (Riazuelo et al. 2004,
     # PRD 69, 103518); the antipodal search cannot see them, the general one can
     cfg = config_from_dict({"topology": {"space": "E2", "lengths": [0.9, 0.9, 0.7], "observer": [0.3, 0.2, 0.0]}})
-    from pipeline.topology.circles import predict_pairs
+    from twinring.topology.circles import predict_pairs
 
     space = inject.shape_from_config(cfg).at(0.9)
     pairs = predict_pairs(space, max_distance=2.0 - 1e-9)

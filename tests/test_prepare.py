@@ -11,9 +11,9 @@ import healpy as hp
 import pytest
 from astropy.io import fits
 
-from pipeline.config import InputError, PrepareSection, config_from_dict
-from pipeline.skymap import SkyMap, load_map, write_map
-from pipeline.prepare import (fit_monopole_dipole, load_and_prepare, prepare_map, read_prepared,
+from twinring.config import InputError, PrepareSection, config_from_dict
+from twinring.skymap import SkyMap, load_map, write_map
+from twinring.prepare import (fit_monopole_dipole, load_and_prepare, prepare_map, read_prepared,
                               remove_monopole_dipole, write_prepared)
 
 
@@ -261,9 +261,9 @@ def test_load_and_prepare_without_map_path():
 def test_input_beam_is_taken_into_account():
     # a map already smoothed by a 2 deg Gaussian beam, prepared to 3 deg in total, equals the
     # unsmoothed map prepared to 3 deg (Gaussian beams compose: b_3 = (b_3 / b_2) b_2; healpy.gauss_beam)
-    from pipeline.config import PrepareSection
-    from pipeline.prepare import prepare_map
-    from pipeline.skymap import SkyMap
+    from twinring.config import PrepareSection
+    from twinring.prepare import prepare_map
+    from twinring.skymap import SkyMap
     import healpy as hp
     import numpy as np
     nside, lmax = 32, 64

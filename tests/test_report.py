@@ -11,9 +11,9 @@ import scipy.stats
 from astropy.table import Table
 from matplotlib.image import imread
 
-from pipeline import bound, calibrate as cal, inject, report
-from pipeline.prepare import Prepared, write_prepared
-from pipeline.results import write_table
+from twinring import bound, calibrate as cal, inject, report
+from twinring.prepare import Prepared, write_prepared
+from twinring.results import write_table
 
 RADII = np.arange(20.0, 81.0, 10.0)
 

@@ -6,7 +6,7 @@ from astropy.coordinates import SkyCoord, CartesianRepresentation
 import astropy.units as u
 from scipy.special import sph_harm_y
 
-from pipeline import rings
+from twinring import rings
 
 
 def test_samples_lie_at_the_radius_astropy():

@@ -9,9 +9,9 @@ import healpy as hp
 import pytest
 
 from conftest import periodic_field_on_sphere, prepared_from_map
-from pipeline import rings, screen, search
-from pipeline.config import SearchSection
-from pipeline.statistic import ring_spectra, scan_pairs
+from twinring import rings, screen, search
+from twinring.config import SearchSection
+from twinring.statistic import ring_spectra, scan_pairs
 
 
 # --------------------------------------------------------------------------- helpers

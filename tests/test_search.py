@@ -14,8 +14,8 @@ import pytest
 import yaml
 from astropy.table import Table
 
-from pipeline import cli, rings, search
-from pipeline.config import SearchSection
+from twinring import cli, rings, search
+from twinring.config import SearchSection
 from conftest import periodic_field_on_sphere, prepared_from_map
 
 L_TORUS = 1.2

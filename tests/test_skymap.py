@@ -12,8 +12,8 @@ import healpy as hp
 import pytest
 from astropy.io import fits
 
-from pipeline.config import InputError
-from pipeline.skymap import load_map, write_map
+from twinring.config import InputError
+from twinring.skymap import load_map, write_map
 
 
 def sky(nside=16, seed=0):

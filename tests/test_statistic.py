@@ -4,8 +4,8 @@ import numpy as np
 import healpy as hp
 import pytest
 
-from pipeline.statistic import ring_spectra, scan_pairs, s_curve, m_weights
-from pipeline import rings
+from twinring.statistic import ring_spectra, scan_pairs, s_curve, m_weights
+from twinring import rings
 
 
 def band_limited_ring(rng, nsamp, mmax):

@@ -4,12 +4,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline import rings
-from pipeline.config import config_from_dict
-from pipeline.results import read_table
-from pipeline.topology import manifolds as M
-from pipeline.topology.circles import COLUMNS, predict_circles, predict_pairs
-from pipeline.topology.stages import run_predict
+from twinring import rings
+from twinring.config import config_from_dict
+from twinring.results import read_table
+from twinring.topology import manifolds as M
+from twinring.topology.circles import COLUMNS, predict_circles, predict_pairs
+from twinring.topology.stages import run_predict
 
 
 def radii(rows):
@@ -70,7 +70,7 @@ def test_half_turn_space_single_pair():
 def test_screw_twist_equals_turn_on_axis(name, turn):
     # An observer on the screw axis sees the screw's pair back-to-back about the axis, traversed in opposite
     # senses (flip true), with a twist equal to the screw's rotation angle (Cornish, Spergel & Starkman 1998;
-    # the phase origins are both +x for centres at the poles, pipeline.rings convention).
+    # the phase origins are both +x for centres at the poles, twinring.rings convention).
     lengths = [3.0, 3.0, 0.8] if name == "E2" else [3.0, 0.8]
     rows = predict_pairs(M.build_space(name, lengths))
     first = [r for r in rows if r["distance"] == pytest.approx(0.8)]
@@ -139,7 +139,7 @@ def test_run_predict_writes_tables(tmp_path):
     f = read_table(path.with_suffix(".fits"))
     assert len(f) == 9
     # Gpc units give the same circles
-    from pipeline.cosmology import chi_ls_gpc
+    from twinring.cosmology import chi_ls_gpc
 
     chi = chi_ls_gpc()
     cfg2 = config_from_dict({"topology": {"space": "E1", "lengths": [1.2 * chi] * 3, "units": "Gpc"}})
@@ -151,8 +151,8 @@ def test_images_that_only_touch_the_sphere_give_no_circle():
     # cubic torus of side sqrt(2) chi: edge images at d = 2 chi only touch the sphere (cos a = 1,
     # CSS 1998), so just the three face pairs at cos a = sqrt(2)/2 (45 deg) remain
     import math
-    from pipeline.topology.manifolds import build_space
-    from pipeline.topology.circles import predict_circles
+    from twinring.topology.manifolds import build_space
+    from twinring.topology.circles import predict_circles
     t = predict_circles(build_space("E1", [math.sqrt(2)] * 3))
     assert len(t) == 3
     assert all(abs(float(r) - 45.0) < 1e-6 for r in t["radius_deg"])

@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from pipeline.config import InputError, config_from_dict
-from pipeline.topology import manifolds as M
+from twinring.config import InputError, config_from_dict
+from twinring.topology import manifolds as M
 
 # one valid parameter set per space (lengths, angles, observer), small enough to have short elements
 PARAMS = {
@@ -189,8 +189,8 @@ def test_open_directions_accept_any_observer_coordinate():
 
 
 def test_gpc_units_convert_with_the_cosmology():
-    from pipeline.cosmology import chi_ls_gpc
-    from pipeline.topology.manifolds import space_from_config
+    from twinring.cosmology import chi_ls_gpc
+    from twinring.topology.manifolds import space_from_config
 
     chi = chi_ls_gpc()
     cfg = config_from_dict({"topology": {"space": "E1", "lengths": [1.2 * chi] * 3, "units": "Gpc",

@@ -13,12 +13,12 @@ import numpy as np
 import pytest
 from scipy.special import spherical_jn
 
-from pipeline import cosmology, rings
-from pipeline.config import InputError, config_from_dict
-from pipeline.topology import manifolds as M
-from pipeline.topology import skies as S
-from pipeline.topology.circles import predict_pairs
-from pipeline.topology.stages import run_sky
+from twinring import cosmology, rings
+from twinring.config import InputError, config_from_dict
+from twinring.topology import manifolds as M
+from twinring.topology import skies as S
+from twinring.topology.circles import predict_pairs
+from twinring.topology.stages import run_sky
 
 # (lengths, angles, observer) per space: small domains with a handful of pairs, radii mostly above 15 deg
 CASES = {
@@ -43,7 +43,7 @@ CASES = {
 
 
 def s_curve(m, row, n=256):
-    """S for every twist j * 360/n, with the pair's predicted sense (independent of pipeline.statistic)."""
+    """S for every twist j * 360/n, with the pair's predicted sense (independent of twinring.statistic)."""
     c1 = rings.lonlat_to_vec(row["lon1_deg"], row["lat1_deg"])
     c2 = rings.lonlat_to_vec(row["lon2_deg"], row["lat2_deg"])
     a = np.radians(row["radius_deg"])
@@ -251,7 +251,7 @@ def _cfg(topology, sky=None, **more):
 def test_run_sky_acceptance_e2(tmp_path):
     # Acceptance (issue 3): twinring sky for E2 [2.5, 2.5, 1.2] from (0.3, 0, 0) at Nside 64, lmax 128, 3 deg:
     # the predicted pair shows S >= 0.85 under the independent statistic; the SW sky takes well under 20 s.
-    from pipeline import skymap
+    from twinring import skymap
 
     cfg = _cfg({"space": "E2", "lengths": [2.5, 2.5, 1.2], "observer": [0.3, 0, 0]},
                {"nside": 64, "lmax": 128, "fwhm_deg": 3.0, "physics": "sw", "seed": 5, "mask": "demo"})

@@ -9,11 +9,11 @@ import pytest
 import yaml
 from astropy.table import Table
 
-from pipeline import calibrate as cal
-from pipeline import workflow
-from pipeline.cli import main
-from pipeline.config import load_config
-from pipeline.topology import manifolds
+from twinring import calibrate as cal
+from twinring import workflow
+from twinring.cli import main
+from twinring.config import load_config
+from twinring.topology import manifolds
 
 L_FACE_40 = 2 * math.cos(math.radians(40.0))      # cubic torus with face circles at 40 deg (CSS 1998)
 
@@ -118,7 +118,7 @@ def test_simulations_do_not_depend_on_the_backend(done_run):
     sky, prepared = cal.load_data(c)
     ctx = cal.make_context(c, sky, prepared)
     serial = cal.run_simulations(ctx, 3)
-    from pipeline.config import ComputeSection
+    from twinring.config import ComputeSection
 
     par = cal.run_simulations(ctx, 3, compute=ComputeSection(backend="processes", workers=2, progress=False))
     assert np.array_equal(serial, par)

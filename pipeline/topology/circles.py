@@ -7,7 +7,7 @@ g x0 - x0; its partner is centred on g^-1 x0 - x0 (Cornish, Spergel & Starkman
 once (circle 1 is the one whose centre comes first in descending z, y, x).
 
 Twist and sense are measured numerically in the search's own conventions
-(pipeline.rings): points of circle 1 at phases phi are mapped through g^-1 and
+(twinring.rings): points of circle 1 at phases phi are mapped through g^-1 and
 their phases psi on circle 2 are read with ``phase_of``; psi = twist + phi
 means ``flip = False``, psi = twist - phi means ``flip = True``.
 """
@@ -102,5 +102,5 @@ def space_meta(space: Space) -> dict:
         "holonomy_order": space.holonomy_order(),
         "orientable": space.orientable,
         "conventions": "cos(radius) = distance / 2 (chi = 1); circle 1 phase phi matches circle 2 phase "
-                       "phi + twist (flip false) or twist - phi (flip true); phase frames of pipeline.rings",
+                       "phi + twist (flip false) or twist - phi (flip true); phase frames of twinring.rings",
     }
