@@ -12,23 +12,24 @@ from), never by the refined ``s``.
 
 Null distribution and p-values
 ------------------------------
-For radius r and sense f let M_rf be the simulations' peak S (N values).
+For radius r and sense f (a *cell*) let M_rf be the simulations' peak S
+(N values).  Every p-value and threshold is empirical, from ranks
+(:mod:`twinring.significance`):
 
-* Local: ``p_local(s) = P(M_rf >= s)``.  With k simulations at or above s, it is
-  (k + 1) / (N + 1) when k >= ``EMPIRICAL_MIN``; beyond that the tail comes
-  from an extreme-value fit (Gumbel by default, ``calibrate.tail``) to the
-  N values.  Thresholds at false-alarm rate a are empirical quantiles when
-  a N >= ``EMPIRICAL_MIN`` and the fit's inverse survival function otherwise.
-* Global (look-elsewhere over all radii and both senses): each peak is
-  standardised, z = (M_rf - mu_rf) / sigma_rf with the simulations' mean and
-  standard deviation; the global statistic of a sky is Z = max over r and f of
-  z.  ``p_global`` of a peak or candidate is P(Z_null >= its z), with the same
-  empirical / extreme-value rule applied to the N values of Z.  The global
-  threshold in S at (r, f) is mu_rf + sigma_rf z_a.
-* The goodness of every fit is a Kolmogorov-Smirnov test (scipy.stats.kstest)
-  of the N values against the fitted law; its p-value is optimistic because the
-  parameters were fitted to the same values (Lilliefors), so read it as a
-  screen for a clearly wrong tail, not as a calibrated test.
+* ``p_local(s) = (1 + #{M_rf >= s}) / (N + 1)``, never below 1/(N+1); a value
+  beyond every simulation gets that floor and ``beyond_sims = True``.
+* ``p_global``: the minimum-p look-elsewhere correction over all radii and both
+  senses (leave-one-out local p of each simulation in every cell, its minimum
+  the null draw; ties broken by the standardised excess z).  p_global >= p_local
+  on every row and global thresholds >= local ones, by construction.
+* A false-alarm rate a is usable only when N >= 1/a - 1; other thresholds are
+  NaN with ``usable = False``, and nothing is called significant at a level the
+  simulations cannot resolve (``calibrate.significance``).
+* An extreme-value law (Gumbel by default, ``calibrate.tail``) is fitted to the
+  simulations' largest standardised peaks and shown only as ``p_global_tail``
+  and in fig_null, with its Kolmogorov-Smirnov p-value (optimistic, since the
+  parameters come from the same values: Lilliefors); it never drives
+  significance, the ranking or the bound.
 
 Spectra (``calibrate.spectrum``)
 --------------------------------
@@ -55,6 +56,7 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import math
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -64,12 +66,12 @@ import scipy.stats
 from astropy.table import Table
 
 from . import prepare as prep_mod
+from . import significance as sig
 from . import search as search_mod
 from .config import InputError
 from .skymap import SkyMap
 
 NOT_IN_PEAKS = ("top", "refine", "suppress_deg", "keep_per_radius")   # search keys that leave grid peaks alone
-EMPIRICAL_MIN = 5            # simulations needed beyond a value to quote an empirical tail
 THRESHOLDS = "thresholds.ecsv"
 NULL_PEAKS = "null_peaks.ecsv"
 
@@ -256,33 +258,16 @@ def fit_tail(x, kind="gumbel") -> TailFit:
     return TailFit(kind, params, float(ks.statistic), float(ks.pvalue), int(x.size))
 
 
-def tail_p(values, fit: TailFit, s):
-    """P(X >= s) from the sample ``values`` (empirical when enough exceed) or the fit: (p, method)."""
-    v = np.asarray(values, float)
-    v = v[np.isfinite(v)]
-    if not np.isfinite(s) or v.size == 0:
-        return float("nan"), "none"
-    k = int(np.sum(v >= s))
-    if k >= EMPIRICAL_MIN or not fit.params:
-        return (k + 1) / (v.size + 1), "empirical"
-    return float(fit.sf(s)), fit.kind
-
-
-def tail_threshold(values, fit: TailFit, rate):
-    """Value exceeded with probability ``rate``: (threshold, method)."""
-    v = np.asarray(values, float)
-    v = v[np.isfinite(v)]
-    if v.size == 0:
-        return float("nan"), "none"
-    if rate * v.size >= EMPIRICAL_MIN or not fit.params:
-        return float(np.quantile(v, 1.0 - rate)), "empirical"
-    return float(fit.isf(rate)), fit.kind
-
-
 # --------------------------------------------------------------------------- the null model
 @dataclass
 class NullModel:
-    """The simulations' grid peaks and everything derived from them."""
+    """The simulations' grid peaks and the Monte Carlo p-values and thresholds derived from them.
+
+    Cells are (radius, sense) pairs.  All p-values and thresholds are empirical
+    (:mod:`twinring.significance`); the extreme-value fits (``local_fits``,
+    ``global_fit`` of the largest standardised peak ``zmax``) are descriptive
+    only and feed nothing but the ``p_global_tail`` column and fig_null.
+    """
     radii: np.ndarray          # (R,) degrees
     peaks: np.ndarray          # (N, R, 2)
     tail: str = "gumbel"
@@ -290,18 +275,28 @@ class NullModel:
     def __post_init__(self):
         P = np.where(np.isfinite(self.peaks), self.peaks, np.nan)
         self.peaks = P
-        with np.errstate(invalid="ignore"):
-            self.mu = np.nanmean(P, axis=0) if P.shape[0] else np.full(P.shape[1:], np.nan)
-            self.sigma = np.nanstd(P, axis=0, ddof=1) if P.shape[0] > 1 else np.full(P.shape[1:], np.nan)
+        n, R, _ = P.shape
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            self.mu = np.nanmean(P, axis=0) if n else np.full(P.shape[1:], np.nan)
+            self.sigma = np.nanstd(P, axis=0, ddof=1) if n > 1 else np.full(P.shape[1:], np.nan)
         self.sigma = np.where(self.sigma > 0, self.sigma, np.nan)
         z = (P - self.mu) / self.sigma
-        self.zmax = np.array([np.nanmax(r) if np.any(np.isfinite(r)) else np.nan for r in z.reshape(z.shape[0], -1)])
+        self.zmax = np.array([np.nanmax(r) if np.any(np.isfinite(r)) else np.nan for r in z.reshape(n, -1)])
+        self.null_minp, self.null_minp_z = sig.min_p_null(P.reshape(n, -1))
         self.local_fits = [[fit_tail(P[:, ir, f], self.tail) for f in (0, 1)] for ir in range(len(self.radii))]
         self.global_fit = fit_tail(self.zmax, self.tail)
 
     @property
     def n_sims(self) -> int:
         return int(self.peaks.shape[0])
+
+    @property
+    def p_floor(self) -> float:
+        return 1.0 / (self.n_sims + 1)
+
+    def resolvable(self, rate) -> bool:
+        return sig.resolvable(rate, self.n_sims)
 
     def radius_index(self, radius_deg):
         """Index of the grid radius nearest to ``radius_deg``."""
@@ -311,34 +306,42 @@ class NullModel:
         return float((s - self.mu[ir, f]) / self.sigma[ir, f]) if np.isfinite(self.sigma[ir, f]) else float("nan")
 
     def p_local(self, ir, f, s):
-        return tail_p(self.peaks[:, ir, f], self.local_fits[ir][f], s)
+        """(p_local, beyond_sims) of grid value ``s`` at radius index ``ir``, sense ``f``."""
+        p, beyond = sig.mc_pvalue(self.peaks[:, ir, f], s)
+        return float(p), bool(beyond)
 
     def p_global(self, ir, f, s):
-        return tail_p(self.zmax, self.global_fit, self.z(ir, f, s))
+        """Family-wise p of ``s`` over every radius and sense (min-p method)."""
+        return sig.global_pvalue(self.p_local(ir, f, s)[0], self.z(ir, f, s), self.null_minp, self.null_minp_z)
 
-    def z_threshold(self, rate):
-        return tail_threshold(self.zmax, self.global_fit, rate)
+    def p_global_tail(self, ir, f, s):
+        """Descriptive only: the extreme-value fit to ``zmax`` evaluated at this value's z."""
+        zz = self.z(ir, f, s)
+        return float(self.global_fit.sf(zz)) if self.global_fit.params and np.isfinite(zz) else float("nan")
 
     def threshold(self, ir, f, rate, which="local"):
-        """S threshold at radius index ``ir``, sense ``f`` and false-alarm ``rate``."""
+        """S that a grid value must exceed for p <= ``rate`` at (``ir``, ``f``); NaN if N cannot resolve it."""
+        if not self.resolvable(rate):
+            return float("nan")
+        v = self.peaks[:, ir, f]
         if which == "global":
-            zt, _ = self.z_threshold(rate)
-            return float(self.mu[ir, f] + self.sigma[ir, f] * zt)
-        return tail_threshold(self.peaks[:, ir, f], self.local_fits[ir][f], rate)[0]
+            cands = np.concatenate([v, self.mu[ir, f] + self.sigma[ir, f] * self.null_minp_z])
+            return sig.smallest_exceeding(cands, lambda x: self.p_global(ir, f, x), rate)
+        return sig.smallest_exceeding(v, lambda x: self.p_local(ir, f, x)[0], rate)
 
     def thresholds_table(self, rates) -> Table:
         rows = []
         for ir, r in enumerate(self.radii):
             for f in (0, 1):
                 fit = self.local_fits[ir][f]
+                n_cell = int(np.sum(np.isfinite(self.peaks[:, ir, f])))
                 for a in rates:
-                    thr, method = tail_threshold(self.peaks[:, ir, f], fit, a)
-                    rows.append((float(r), bool(f), float(a), thr, self.threshold(ir, f, a, "global"), method,
-                                 int(np.sum(np.isfinite(self.peaks[:, ir, f]))), float(self.mu[ir, f]),
-                                 float(self.sigma[ir, f]), *(_loc_scale(fit)), fit.ks_p))
+                    rows.append((float(r), bool(f), float(a), self.threshold(ir, f, a), self.threshold(ir, f, a, "global"),
+                                 self.resolvable(a), n_cell, float(self.mu[ir, f]), float(self.sigma[ir, f]),
+                                 *(_loc_scale(fit)), fit.ks_p))
         t = Table(rows=rows, names=["radius_deg", "flip", "false_alarm", "s_threshold", "s_threshold_global",
-                                    "method", "n_sims", "s_mean", "s_std", "fit_loc", "fit_scale", "fit_ks_p"],
-                  dtype=[float, bool, float, float, float, str, int, float, float, float, float, float])
+                                    "usable", "n_sims", "s_mean", "s_std", "fit_loc", "fit_scale", "fit_ks_p"],
+                  dtype=[float, bool, float, float, float, bool, int, float, float, float, float, float])
         for c in ("s_threshold", "s_threshold_global", "s_mean", "s_std", "fit_loc", "fit_scale", "fit_ks_p"):
             t[c].info.format = ".5f"
         t["radius_deg"].unit = "deg"
@@ -346,17 +349,17 @@ class NullModel:
 
     def meta(self, rates) -> dict:
         ks = np.array([f.ks_p for row in self.local_fits for f in row], float)
-        out = {"n_sims": self.n_sims, "tail": self.tail, "empirical_min": EMPIRICAL_MIN,
-               "global_statistic": "max over radii and senses of z = (peak S - sim mean) / sim std",
+        out = {"n_sims": self.n_sims, "p_floor": self.p_floor, "tail": self.tail,
+               "p_values": "empirical: (1 + #sims at or above) / (N + 1); never below 1/(N + 1)",
+               "global_method": "minimum p over radii and senses, leave-one-out per simulation, ties broken by z",
+               "resolvable_rates": [float(a) for a in rates if self.resolvable(a)],
+               "unresolvable_rates": [float(a) for a in rates if not self.resolvable(a)],
+               "tail_fit_use": "descriptive only (p_global_tail, fig_null); never significance, ranking or bound",
                "global_fit_params": list(self.global_fit.params), "global_fit_ks_stat": self.global_fit.ks_stat,
                "global_fit_ks_p": self.global_fit.ks_p,
                "local_fit_ks_p_min": float(np.nanmin(ks)) if np.any(np.isfinite(ks)) else float("nan"),
                "local_fit_ks_p_median": float(np.nanmedian(ks)) if np.any(np.isfinite(ks)) else float("nan"),
                "comparison": "grid S (peak_s / s_grid), no off-grid refinement, in data and simulations"}
-        for a in rates:
-            zt, method = self.z_threshold(a)
-            out[f"z_threshold_{a:g}"] = zt
-            out[f"z_threshold_{a:g}_method"] = method
         return out
 
     def null_table(self) -> Table:
@@ -370,6 +373,17 @@ class NullModel:
         t["s_max"] = self.peaks.ravel()
         t["s_max"].info.format = ".6f"
         return t
+
+
+def resolution_lines(n_sims, rates):
+    """Plain statements of which false-alarm rates ``n_sims`` simulations resolve."""
+    floor = 1.0 / (n_sims + 1)
+    lines = [f"{n_sims} simulations: smallest possible p = 1/{n_sims + 1} = {floor:.3g}"]
+    for a in sorted(set(float(x) for x in rates)):
+        if not sig.resolvable(a, n_sims):
+            lines.append(f"false-alarm rate {a:g} is not resolved by {n_sims} simulations "
+                         f"(needs at least {sig.sims_needed(a)}); its thresholds are marked usable = False")
+    return lines
 
 
 def _loc_scale(fit):
@@ -398,39 +412,58 @@ def load_null_model(run_dir) -> NullModel:
 
 
 # --------------------------------------------------------------------------- p-values on tables
-def annotate(table: Table, model: NullModel, s_col="s_grid") -> Table:
-    """Copy of a candidates or peaks table with ``z``, ``p_local`` and ``p_global`` columns."""
+def annotate(table: Table, model: NullModel, s_col="s_grid", level=None) -> Table:
+    """Copy of a candidates or peaks table with calibrated columns, rows in the calibrated ranking.
+
+    Adds ``z``, ``p_local``, ``p_global`` (empirical, never below 1/(N+1)),
+    ``beyond_sims`` (no simulation reached the value at its radius and sense),
+    ``p_global_tail`` (descriptive extreme-value extrapolation, drives nothing)
+    and, with a significance ``level``, ``significant`` (p_global <= level, and
+    only when N resolves that level).  Rows are sorted by p_global, then z
+    (larger first), then grid S (larger first).
+    """
     t = table.copy()
-    z, pl, pg, ml, mg = [], [], [], [], []
+    cols = {k: [] for k in ("z", "p_local", "p_global", "beyond_sims", "p_global_tail")}
     for row in t:
         ir = model.radius_index(row["radius_deg"])
         f = int(bool(row["flip"]))
         s = float(row[s_col])
-        z.append(model.z(ir, f, s))
-        p1, m1 = model.p_local(ir, f, s)
-        p2, m2 = model.p_global(ir, f, s)
-        pl.append(p1); pg.append(p2); ml.append(m1); mg.append(m2)
-    for name, vals, fmt in (("z", z, ".4f"), ("p_local", pl, ".6g"), ("p_global", pg, ".6g")):
+        pl, beyond = model.p_local(ir, f, s)
+        cols["z"].append(model.z(ir, f, s))
+        cols["p_local"].append(pl)
+        cols["beyond_sims"].append(beyond)
+        cols["p_global"].append(model.p_global(ir, f, s))
+        cols["p_global_tail"].append(model.p_global_tail(ir, f, s))
+    for name in ("z", "p_local", "p_global", "beyond_sims", "p_global_tail", "significant",
+                 "p_local_method", "p_global_method"):
         if name in t.colnames:
             t.remove_column(name)
-        t[name] = np.asarray(vals, float)
+    for name, fmt in (("z", ".4f"), ("p_local", ".6g"), ("p_global", ".6g"), ("p_global_tail", ".3g")):
+        t[name] = np.asarray(cols[name], float)
         t[name].info.format = fmt
-    for name, vals in (("p_local_method", ml), ("p_global_method", mg)):
-        if name in t.colnames:
-            t.remove_column(name)
-        t[name] = np.asarray(vals, dtype=str) if vals else np.zeros(0, dtype="U10")
+    t["beyond_sims"] = np.asarray(cols["beyond_sims"], bool)
+    if level is not None:
+        ok = model.resolvable(level)
+        t["significant"] = np.asarray([ok and np.isfinite(p) and p <= level for p in cols["p_global"]], bool)
+    if len(t):
+        t = t[rank_order(t, s_col)]
     return t
 
 
+def rank_order(table: Table, s_col="s_grid") -> np.ndarray:
+    """Row order of the calibrated ranking: p_global up, then z down, then grid S down (NaNs last)."""
+    p = np.nan_to_num(np.asarray(table["p_global"], float), nan=np.inf)
+    z = np.nan_to_num(np.asarray(table["z"], float), nan=-np.inf)
+    s = np.nan_to_num(np.asarray(table[s_col], float), nan=-np.inf)
+    return np.lexsort((-s, -z, p))
+
+
 def best_global(table: Table):
-    """Row of a table annotated by :func:`annotate` with the smallest p_global (ties: largest z)."""
+    """Row of a table annotated by :func:`annotate` that ranks first (smallest p_global, ties: larger z, S)."""
     if len(table) == 0:
         return None
-    p = np.asarray(table["p_global"], float)
-    z = np.asarray(table["z"], float)
-    p = np.where(np.isfinite(p), p, np.inf)
-    order = np.lexsort((-np.nan_to_num(z, nan=-np.inf), p))
-    return table[int(order[0])]
+    col = "s_grid" if "s_grid" in table.colnames else "s"
+    return table[int(rank_order(table, col)[0])]
 
 
 # --------------------------------------------------------------------------- the stage
@@ -607,13 +640,17 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
     write_table(model.thresholds_table(c.false_alarm), run.dir / THRESHOLDS, meta)
     write_table(model.null_table(), run.dir / NULL_PEAKS, meta)
     lines = [f"{model.n_sims} simulations in {dt:.1f} s ({dt / max(1, model.n_sims):.2f} s each)"]
-    a = min(c.false_alarm)
-    lo, hi = 0, len(model.radii) - 1
-    lines.append(f"{a:g} thresholds (flip false / true): {model.threshold(lo, 0, a):.3f} / "
-                 f"{model.threshold(lo, 1, a):.3f} at {model.radii[lo]:g} deg, {model.threshold(hi, 0, a):.3f} / "
-                 f"{model.threshold(hi, 1, a):.3f} at {model.radii[hi]:g} deg; global z threshold "
-                 f"{model.z_threshold(a)[0]:.2f}")
-    lines.append(f"extreme-value fit ({c.tail}) of the global maxima: KS p = {model.global_fit.ks_p:.3f}")
+    lines += resolution_lines(model.n_sims, tuple(c.false_alarm) + (c.significance,))
+    usable = [a for a in c.false_alarm if model.resolvable(a)]
+    if usable:
+        a = min(usable)
+        lo, hi = 0, len(model.radii) - 1
+        lines.append(f"{a:g} local thresholds (flip false / true): {model.threshold(lo, 0, a):.3f} / "
+                     f"{model.threshold(lo, 1, a):.3f} at {model.radii[lo]:g} deg, {model.threshold(hi, 0, a):.3f} / "
+                     f"{model.threshold(hi, 1, a):.3f} at {model.radii[hi]:g} deg")
+    lines.append(f"extreme-value fit ({c.tail}) of the largest standardised peaks, descriptive only: "
+                 f"KS p = {model.global_fit.ks_p:.3f}")
+    level_ok = model.resolvable(c.significance)
     for name, col in (("peaks.ecsv", "s"), ("candidates.ecsv", "s_grid")):
         p = run.dir / name
         if not p.exists():
@@ -623,16 +660,36 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
             check_grid(t, model, p)
         if col not in t.colnames:
             continue
-        out = annotate(t, model, col)
+        out = annotate(t, model, col, level=c.significance)
         m = dict(t.meta)
         m.update({f"calibration_{k}": v for k, v in provenance(cfg, None, "calibrate").items()},
-                 calibration_n_sims=model.n_sims, calibration_tail=c.tail)
+                 calibration_n_sims=model.n_sims, p_floor=model.p_floor, significance_level=c.significance,
+                 significance_resolved=level_ok,
+                 ranking="p_global, then z, then grid S" if name == "candidates.ecsv" else "radius, sense")
+        if name == "peaks.ecsv":
+            out.sort(["radius_deg", "flip"])
         write_table(out, p, m)
         best = best_global(out)
         if best is not None:
-            lines.append(f"{name}: most significant at radius {best['radius_deg']:.2f} deg flip {bool(best['flip'])}: "
-                         f"S_grid = {best[col]:.3f}, p_local = {best['p_local']:.3g}, p_global = {best['p_global']:.3g}")
+            lines.append(f"{name}: first in rank at radius {best['radius_deg']:.2f} deg flip {bool(best['flip'])}: "
+                         f"S_grid = {best[col]:.3f}, {_p_text(best, model.n_sims)}")
+        if name == "candidates.ecsv":
+            nsig = int(np.sum(out["significant"]))
+            if not level_ok:
+                lines.append(f"nothing can be called significant at {c.significance:g} with {model.n_sims} "
+                             f"simulations (needs at least {sig.sims_needed(c.significance)})")
+            else:
+                lines.append(f"{nsig} candidate(s) significant at p_global <= {c.significance:g} "
+                             f"({model.n_sims} simulations)")
     return lines
+
+
+def _p_text(row, n_sims):
+    """``p_local = ..., p_global = ...`` with ``<=`` where the value lies beyond every simulation."""
+    floor = 1.0 / (n_sims + 1)
+    pg = float(row["p_global"])
+    note = f", the floor 1/{n_sims + 1}: beyond every simulation" if pg <= floor * (1 + 1e-9) else ""
+    return f"p_local = {float(row['p_local']):.3g}, p_global = {pg:.3g} (N = {n_sims}{note})"
 
 
 def cmd_calibrate(args):

@@ -199,6 +199,7 @@ class CalibrateSection:
     spectrum: str = _f("data", "str", choices=("data", "theory", "file"))
     spectrum_file: str | None = _f(None, "path?")
     false_alarm: tuple = _f((0.01, 0.05), "floats")
+    significance: float = _f(0.05, "float", min=0.0, max=1.0, open_min=True)
     seed: int = _f(7, "int", min=0)
     noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
     tail: str = _f("gumbel", "str", choices=("gumbel", "genextreme"))
@@ -221,14 +222,14 @@ class InjectSection:
     realizations: int = _f(3, "int", min=1, max=100000)
     seed: int = _f(11, "int", min=0)
     mode: str = _f("targeted", "str", choices=("targeted", "full"))
-    false_alarm: float = _f(0.01, "float", min=0.0, max=1.0, open_min=True)
+    false_alarm: float | None = _f(None, "float?", min=0.0, max=1.0, open_min=True)
     threshold: str = _f("global", "str", choices=("global", "local"))
     radius_tol_deg: float = _f(2.0, "float", min=0.0, max=45.0)
     centre_tol_deg: float = _f(0.0, "float", min=0.0, max=90.0)
     noise_uk_arcmin: float | None = _f(None, "float?", min=0.0)
     beam_fwhm_deg: float | None = _f(None, "float?", min=0.0, max=180.0)
     random_orientation: bool = _f(True, "bool")
-    physics: str | None = _f(None, "str?", choices=("sw", "full"))
+    physics: str = _f("full", "str", choices=("sw", "full"))
 
     def check(self, where):
         if not self.sizes and not self.radii_deg:
@@ -243,9 +244,9 @@ class InjectSection:
 class BoundSection:
     """Smallest detectable radius -> lower bound on the size of space (pipeline/bound.py)."""
     recovery: float = _f(0.95, "float", min=0.0, max=1.0, open_min=True)
-    false_alarm: float = _f(0.01, "float", min=0.0, max=1.0, open_min=True)
+    false_alarm: float | None = _f(None, "float?", min=0.0, max=1.0, open_min=True)
     chi_gpc: float | None = _f(None, "float?", min=0.0, open_min=True)
-    conservative: bool = _f(False, "bool")
+    point_fraction: bool = _f(False, "bool")
 
     def check(self, where):
         pass

@@ -39,8 +39,19 @@ Detection (``inject.mode``)
     refinement); detected when a kept pair with the predicted sense, both
     centres within ``centre_tol_deg`` of a target's (0: 2.5 centre-grid steps)
     and a radius within ``radius_tol_deg`` reaches the threshold at its radius.
-    Thresholds are the calibration's at ``inject.false_alarm``: global (the
-    look-elsewhere-corrected level of twinring.calibrate) or local.
+    Thresholds are the calibration's at ``inject.false_alarm`` (unset:
+    ``calibrate.significance``): global (the look-elsewhere-corrected level of
+    twinring.calibrate) or local; a rate the calibration's N simulations cannot
+    resolve (N < 1/rate - 1) is refused before any work.
+
+Physics (``inject.physics``): ``full`` by default (CAMB transfer functions:
+Sachs-Wolfe, integrated Sachs-Wolfe and Doppler terms, which differ between the
+two views of a circle and lower S); ``sw`` (Sachs-Wolfe only) on request, and
+then labelled in every output as idealised.
+
+Recovered fractions carry the two-sided 95 % Clopper-Pearson interval
+(``ci_low``, ``ci_high``) and the one-sided 95 % lower limit ``lower_95`` that
+``bound`` requires by default.
 
 Instrument: white noise of ``inject.noise_uk_arcmin`` and a Gaussian beam of
 ``inject.beam_fwhm_deg`` (the instrument's, applied before ``prepare`` adds its
@@ -70,6 +81,7 @@ from . import prepare as prep_mod
 from . import rings
 from .calibrate import grid_peaks, noise_sigma_pixel
 from .config import InputError
+from .significance import lower_limit
 from .skymap import SkyMap
 
 RECOVERY = "recovery.ecsv"
@@ -141,11 +153,36 @@ def distance_per_size(shape: SpaceShape, scfg) -> float:
 
 
 def campaign_sizes(cfg, shape, scfg):
-    """Sizes (chi) of the campaign and d1."""
+    """Sizes (chi) of the campaign and d1; refuses sizes whose largest circle the search cannot see."""
     d1 = distance_per_size(shape, scfg)
     if cfg.inject.sizes:
-        return tuple(float(s) for s in cfg.inject.sizes), d1
-    return tuple(2.0 * math.cos(math.radians(r)) / d1 for r in cfg.inject.radii_deg), d1
+        sizes = tuple(float(s) for s in cfg.inject.sizes)
+    else:
+        sizes = tuple(2.0 * math.cos(math.radians(r)) / d1 for r in cfg.inject.radii_deg)
+    check_visible(cfg, sizes, d1, scfg)
+    return sizes, d1
+
+
+def visible_radius(size, d1):
+    """Largest circle radius (deg) of a space of this size, NaN when its images lie beyond 2 chi (CSS 1998)."""
+    c = float(size) * float(d1) / 2.0
+    return math.degrees(math.acos(c)) if c < 1.0 else float("nan")
+
+
+def check_visible(cfg, sizes, d1, scfg):
+    """Every campaign size must show a circle inside the searched radii (within inject.radius_tol_deg)."""
+    radii = np.asarray(scfg.radii_deg(), float)
+    lo, hi = radii.min() - cfg.inject.radius_tol_deg, radii.max() + cfg.inject.radius_tol_deg
+    bad = []
+    for size in sizes:
+        r = visible_radius(size, d1)
+        if not (np.isfinite(r) and lo <= r <= hi):
+            bad.append(f"{size:.4g} chi ({'no circle' if not np.isfinite(r) else f'radius {r:.1f} deg'})")
+    if bad:
+        key = "inject.sizes" if cfg.inject.sizes else "inject.radii_deg"
+        raise InputError(f"{cfg.source or '<config>'}: {key}: campaign size(s) {', '.join(bad)} show no circle inside "
+                         f"the searched radii {radii.min():g}-{radii.max():g} deg; allowed: sizes below "
+                         f"{2.0 / d1:.4g} chi whose radius arccos(size x {d1:.4g} / 2) lies in that range")
 
 
 def size_for_radius(radius_deg, d1):
@@ -342,17 +379,18 @@ def recovery_table(inj: Table, confidence=CONFIDENCE) -> Table:
         n = len(sel)
         k = int(np.sum(sel["detected"]))
         lo, hi = binomial_interval(k, n, confidence)
+        low1 = float(lower_limit(k, n, confidence)) if n else np.nan
         s = np.asarray(sel["s"], float)
         s = s[np.isfinite(s)]
         rows.append((float(sel["size_chi"][0]), float(np.nanmedian(sel["radius_deg"])), n, k, k / n if n else np.nan,
-                     lo, hi, bool(np.all(sel["in_range"])), float(np.median(s)) if s.size else np.nan,
+                     lo, hi, low1, bool(np.all(sel["in_range"])), float(np.median(s)) if s.size else np.nan,
                      float(np.nanmedian(sel["s_threshold"])) if np.any(np.isfinite(sel["s_threshold"])) else np.nan))
-    names = ["size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high", "in_range", "s_median",
-             "s_threshold"]
-    dtypes = [float, float, int, int, float, float, float, bool, float, float]
+    names = ["size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high", "lower_95", "in_range",
+             "s_median", "s_threshold"]
+    dtypes = [float, float, int, int, float, float, float, float, bool, float, float]
     t = Table(rows=rows, names=names, dtype=dtypes) if rows else Table(names=names, dtype=dtypes)
     t.sort("radius_deg")
-    for c in ("size_chi", "radius_deg", "fraction", "ci_low", "ci_high", "s_median", "s_threshold"):
+    for c in ("size_chi", "radius_deg", "fraction", "ci_low", "ci_high", "lower_95", "s_median", "s_threshold"):
         t[c].info.format = ".4f"
     t["radius_deg"].unit = "deg"
     return t
@@ -388,7 +426,7 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
     mask = None
     if np.any(sky.mask <= 0.5):
         mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
-    physics = inj.physics or cfg.sky.physics
+    physics = inj.physics
     recipe = SkyRecipe(nside=nside, lmax=int(cfg.prepare.lmax), fwhm_deg=0.0, physics=physics, seed=0,
                        noise_uk_arcmin=0.0, lmin=2, kmax_factor=cfg.sky.kmax_factor,
                        open_length=cfg.sky.open_length_chi)
@@ -397,7 +435,8 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
     if radii.size != cal_radii.size or not np.allclose(radii, cal_radii, atol=1e-6):
         raise InputError(f"{cfg.source}: search.radius_deg differs from the calibration's radii; "
                          "allowed: rerun `twinring calibrate` with this config")
-    thr = np.array([[model.threshold(ir, f, inj.false_alarm, inj.threshold) for f in (0, 1)]
+    rate = injection_rate(cfg, model)
+    thr = np.array([[model.threshold(ir, f, rate, inj.threshold) for f in (0, 1)]
                     for ir in range(radii.size)])
     noise, beam = instrument(cfg)
     sigma = noise_sigma_pixel(noise, nside)
@@ -412,6 +451,24 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
                          prep=cfg.prepare, search=cfg.search, mode=inj.mode, radius_tol_deg=inj.radius_tol_deg,
                          centre_tol_deg=inj.centre_tol_deg, radii=radii, thresholds=thr, seed=int(inj.seed),
                          key=h.hexdigest()[:16])
+
+
+def injection_rate(cfg, model):
+    """The false-alarm rate of the detection thresholds; refused when the calibration cannot resolve it."""
+    from .significance import sims_needed
+
+    rate = cfg.inject.false_alarm if cfg.inject.false_alarm is not None else cfg.calibrate.significance
+    if not model.resolvable(rate):
+        key = "inject.false_alarm" if cfg.inject.false_alarm is not None else "calibrate.significance"
+        raise InputError(f"{cfg.source or '<config>'}: {key}: found {rate:g}, which {model.n_sims} calibration "
+                         f"simulations cannot resolve (needs at least {sims_needed(rate)}); allowed: a rate >= "
+                         f"1/(N+1) = {model.p_floor:.3g}, or more calibrate.simulations")
+    return float(rate)
+
+
+def physics_label(physics):
+    return ("full physics (CAMB: Sachs-Wolfe, ISW, Doppler)" if physics == "full"
+            else "Sachs-Wolfe only (idealised: no ISW or Doppler; optimistic sensitivity)")
 
 
 def check_campaign(cfg, ctx: InjectContext):
@@ -446,8 +503,10 @@ def inject_run(cfg, run, sky=None):
     ctx = make_context(cfg, sky, model, shape, sizes)
     check_campaign(cfg, ctx)
     units = [(i, j) for i in range(len(sizes)) for j in range(cfg.inject.realizations)]
+    rate = injection_rate(cfg, model)
     run.log(f"campaign: {shape.name}, {len(sizes)} sizes x {cfg.inject.realizations} skies, mode {ctx.mode}, "
-            f"{cfg.inject.threshold} threshold at {cfg.inject.false_alarm:g} (setup {ctx.key})")
+            f"{physics_label(ctx.recipe.physics)}, {cfg.inject.threshold} threshold at {rate:g} "
+            f"({model.n_sims} simulations; setup {ctx.key})")
     t0 = time.time()
     res = run_units(inject_unit, ctx, units, compute=cfg.compute, store_dir=run.dir, tag="inject", key=ctx.key,
                     progress=run.progress, log=run.log)
@@ -456,17 +515,20 @@ def inject_run(cfg, run, sky=None):
     rec = recovery_table(inj)
     meta = provenance(cfg, input_files(cfg), "inject")
     meta.update(space=shape.name, shape_lengths=list(shape.lengths), distance_per_size=d1, mode=ctx.mode,
-                false_alarm=cfg.inject.false_alarm, threshold=cfg.inject.threshold,
+                false_alarm=rate, threshold=cfg.inject.threshold, calibration_n_sims=model.n_sims,
+                physics_label=physics_label(ctx.recipe.physics),
                 realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=instrument(cfg)[0],
                 beam_fwhm_deg=instrument(cfg)[1],
                 physics=ctx.recipe.physics, confidence=CONFIDENCE, search_family=cfg.search.family,
                 size_definition="length of the first generator in units of chi (cubic torus: side L)")
     write_table(inj, run.dir / INJECTIONS, meta)
     write_table(rec, run.dir / RECOVERY, meta)
-    lines = [f"{len(units)} injected skies in {dt:.1f} s ({dt / max(1, len(units)):.2f} s each)"]
+    lines = [f"{len(units)} injected skies in {dt:.1f} s ({dt / max(1, len(units)):.2f} s each); "
+             f"{physics_label(ctx.recipe.physics)}"]
     for row in rec:
         lines.append(f"  size {row['size_chi']:.3f} chi, radius {row['radius_deg']:5.1f} deg: "
-                     f"{row['detected']}/{row['n']} recovered ({row['ci_low']:.2f}-{row['ci_high']:.2f})")
+                     f"{row['detected']}/{row['n']} recovered (95 % interval {row['ci_low']:.2f}-{row['ci_high']:.2f},"
+                     f" one-sided 95 % lower limit {row['lower_95']:.2f})")
     return lines
 
 

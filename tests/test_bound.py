@@ -17,8 +17,10 @@ def test_cubic_torus_bound_from_alpha_min_25_deg():
     # no circles above 25 deg means L > 2 chi cos 25 deg = 25.2 Gpc for chi = 13.9 Gpc
     # (compare: Cornish et al. 2004, PRL 92, 201302, quote 24 Gpc from radii above 25 deg)
     assert bound.size_bound(25.0, d1=1.0, chi=13.9) == pytest.approx(25.2, abs=0.05)
-    rec = Table({"radius_deg": [15.0, 20.0, 25.0, 30.0, 40.0, 60.0], "fraction": [0.2, 0.8, 0.96, 1.0, 1.0, 1.0]})
-    row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)")
+    n = np.full(6, 100)
+    det = np.array([20, 80, 99, 100, 100, 100])
+    rec = Table({"radius_deg": [15.0, 20.0, 25.0, 30.0, 40.0, 60.0], "n": n, "detected": det, "fraction": det / n})
+    row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)", n_sims=200)
     assert row["alpha_min_deg"] == 25.0
     assert row["size_gpc"] == pytest.approx(25.2, abs=0.05)
     assert row["size_gpc"] > 24.0
@@ -55,13 +57,27 @@ def test_alpha_min_rules():
     assert bound.alpha_min(r[::-1], f[::-1], 0.95) == 50
 
 
-def test_significant_radii_reads_p_global():
-    t = Table({"radius_deg": [30.0, 45.0, 60.0], "p_global": [0.5, 0.004, np.nan]})
-    assert bound.significant_radii([t, None], 0.01) == [45.0]
+def test_significant_rows_read_p_global_only_when_resolved():
+    # a Monte Carlo p of 1/(N+1) cannot support a level below it (Davison & Hinkley 1997, ch. 4)
+    t = Table({"radius_deg": [30.0, 45.0, 60.0], "flip": [True, True, False], "s_grid": [0.3, 0.8, 0.2],
+               "p_global": [0.5, 0.004, np.nan]})
+    assert [r[0] for r in bound.significant_rows([t, None], 0.01, 249)] == [45.0]
+    assert bound.significant_rows([t], 0.01, 40) == []           # 40 simulations cannot resolve 1 %
+
+
+def test_detection_headline_names_the_circles():
+    n = np.full(3, 100)
+    rec = Table({"radius_deg": [30.0, 50.0, 70.0], "n": n, "detected": n, "fraction": np.ones(3)})
+    sig = [(45.0, True, 0.004, 0.81)]
+    row = bound.bound_row(rec, 0.95, 0.01, sig, 2.0, 1.0, 13.9, "x", n_sims=249)
+    assert math.isnan(row["alpha_min_deg"])
+    text = bound.statement(row)
+    assert text.startswith("Matched circles detected") and "45.0 deg" in text and "249 simulations" in text
 
 
 def test_no_bound_statement():
-    rec = Table({"radius_deg": [30.0, 40.0], "fraction": [0.5, 0.6]})
+    n = np.array([100, 100])
+    rec = Table({"radius_deg": [30.0, 40.0], "n": n, "detected": [50, 60], "fraction": [0.5, 0.6]})
     row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)")
     assert math.isnan(row["size_chi"])
     assert "No bound" in bound.statement(row)
@@ -76,14 +92,17 @@ def test_torus_face_distance_is_the_side():
     assert d[0] == pytest.approx(0.9) and d[1] == pytest.approx(0.9 * math.sqrt(2))
 
 
-def test_conservative_uses_the_interval():
-    # with few realisations, 4 of 4 recovered has a 95 % Clopper-Pearson lower end of 0.40 (beta quantile)
-    from twinring import inject
-
-    lo4, _ = inject.binomial_interval(4, 4)
-    lo60, _ = inject.binomial_interval(80, 80)   # 0.025^(1/80) = 0.955
-    rec = Table({"radius_deg": [30.0, 50.0, 70.0], "fraction": [1.0, 1.0, 1.0], "ci_low": [lo4, lo60, lo60]})
-    plain = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x")
-    strict = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x", conservative=True)
-    assert plain["alpha_min_deg"] == 30.0 and strict["alpha_min_deg"] == 50.0
-    assert "lower 95 % bound" in bound.statement(strict)
+def test_bound_needs_the_lower_limit_by_default():
+    # Clopper & Pearson 1934 (Biometrika 26, 404): the one-sided 95 % lower limit of n of n is 0.05^(1/n):
+    # 3 of 3 gives 0.37, 59 of 59 gives 0.9505 (scipy.stats.beta)
+    n = np.array([3, 59, 59])
+    rec = Table({"radius_deg": [30.0, 50.0, 70.0], "n": n, "detected": n, "fraction": np.ones(3)})
+    strict = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x")
+    plain = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x", point_fraction=True)
+    assert strict["alpha_min_deg"] == 50.0 and plain["alpha_min_deg"] == 30.0
+    assert "lower limit" in bound.statement(strict) and "point fraction" in bound.statement(plain)
+    # a campaign of 3 realisations per radius gives no alpha_min and says how many are needed
+    small = Table({"radius_deg": [30.0, 50.0], "n": [3, 3], "detected": [3, 3], "fraction": [1.0, 1.0]})
+    row = bound.bound_row(small, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x")
+    assert math.isnan(row["alpha_min_deg"])
+    assert "59 of 59" in bound.statement(row)

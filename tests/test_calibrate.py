@@ -130,15 +130,10 @@ def test_gumbel_fit_recovers_known_parameters():
     assert fit.params[0] == pytest.approx(loc, abs=3 * scale / math.sqrt(3000) * 1.5)
     assert fit.params[1] == pytest.approx(scale, rel=0.05)
     assert fit.ks_p > 0.01
-    # tails beyond the sample come from the fit and match the true law
+    # the fitted tail (descriptive only: p_global_tail, fig_null) matches the true law beyond the sample
     true = scipy.stats.gumbel_r(loc, scale)
-    thr, method = cal.tail_threshold(x, fit, 1e-4)
-    assert method == "gumbel" and thr == pytest.approx(true.isf(1e-4), abs=0.01)
-    p, method = cal.tail_p(x, fit, true.isf(1e-5))
-    assert method == "gumbel" and p == pytest.approx(1e-5, rel=0.5)
-    # inside the sample the empirical frequency is used
-    p, method = cal.tail_p(x, fit, true.isf(0.3))
-    assert method == "empirical" and p == pytest.approx(0.3, abs=0.03)
+    assert fit.isf(1e-4) == pytest.approx(true.isf(1e-4), abs=0.01)
+    assert fit.sf(true.isf(1e-5)) == pytest.approx(1e-5, rel=0.5)
     # a normal sample is no Gumbel: the KS check says so
     bad = cal.fit_tail(np.abs(rng.standard_normal(3000)), "gumbel")
     assert bad.ks_p < 1e-3
@@ -169,36 +164,40 @@ def null_split():
 
 
 def test_null_p_global_of_the_best_is_uniform(null_split):
-    # under the null the p-value of the most significant peak is uniform on held-out skies
-    # (Kolmogorov-Smirnov against U(0, 1), scipy.stats.kstest)
+    # under the null the global p of each held-out isotropic sky's best cell is uniform (Kolmogorov-Smirnov
+    # against U(0, 1), scipy.stats.kstest; 40 fresh skies that are not calibration simulations)
     radii, calib, held = null_split
     model = cal.NullModel(radii, calib)
-    best = [min(model.p_global(ir, f, sky[ir, f])[0] for ir in range(radii.size) for f in (0, 1)) for sky in held]
+    cells = [(ir, f) for ir in range(radii.size) for f in (0, 1)]
+    best = [min(model.p_global(ir, f, sky[ir, f]) for ir, f in cells) for sky in held]
     assert scipy.stats.kstest(best, "uniform").pvalue > 0.01
+    lo, hi = scipy.stats.binom.interval(0.99, len(best), 0.1)
+    assert lo <= np.sum(np.asarray(best) <= 0.1) <= hi
     # the local p of the best is far from uniform: the look-elsewhere effect is real and corrected
-    local = [min(model.p_local(ir, f, sky[ir, f])[0] for ir in range(radii.size) for f in (0, 1)) for sky in held]
+    local = [min(model.p_local(ir, f, sky[ir, f])[0] for ir, f in cells) for sky in held]
     assert scipy.stats.kstest(local, "uniform").pvalue < 0.01
     assert np.median(local) < np.median(best)
+    # and nothing is below the Monte Carlo floor 1/(N+1) (Davison & Hinkley 1997, ch. 4)
+    assert min(best) >= 1 / 41 - 1e-12 and min(local) >= 1 / 41 - 1e-12
 
 
 def test_thresholds_rise_toward_small_radii(null_split):
     # fewer independent samples on small circles: the null maxima of S are larger there
     # (common practice, no source)
     radii, calib, _ = null_split
-    model = cal.NullModel(radii, np.concatenate([calib]))
+    model = cal.NullModel(radii, calib)
     t = model.thresholds_table([0.01, 0.05])
+    assert not np.any(t["usable"][t["false_alarm"] == 0.01])          # 40 simulations cannot resolve 1 %
+    assert np.all(np.isnan(t["s_threshold"][t["false_alarm"] == 0.01]))
     for f in (False, True):
-        for a in (0.01, 0.05):
-            sel = (t["flip"] == f) & (t["false_alarm"] == a)
-            thr = np.asarray(t["s_threshold"][sel])
-            r = np.asarray(t["radius_deg"][sel])
-            assert thr[r <= 30].min() > thr[r >= 60].max()
-            assert scipy.stats.spearmanr(r, thr).statistic < -0.8
-            glob = np.asarray(t["s_threshold_global"][sel])
-            # the global maximum over 14 radius/sense cells exceeds each cell's: global thresholds sit higher
-            # (separate tail fits may cross by a little at one radius)
-            assert np.mean(glob - thr) > 0.01 and np.all(glob > thr - 0.01)
-    assert set(t["method"]) <= {"gumbel", "empirical"}
+        sel = (t["flip"] == f) & (t["false_alarm"] == 0.05)
+        thr = np.asarray(t["s_threshold"][sel])
+        r = np.asarray(t["radius_deg"][sel])
+        assert thr[r <= 30].min() > thr[r >= 60].max()
+        assert scipy.stats.spearmanr(r, thr).statistic < -0.8
+        glob = np.asarray(t["s_threshold_global"][sel])
+        # a family-wise threshold is never below the local one (common practice, no source)
+        assert np.all(glob >= thr) and np.mean(glob - thr) > 0.01
     assert t["n_sims"].min() == 40
 
 
@@ -207,33 +206,43 @@ def test_table_round_trip(null_split):
     model = cal.NullModel(radii, calib)
     again = cal.null_model_from_table(model.null_table())
     assert np.array_equal(again.peaks, model.peaks)
-    assert again.z_threshold(0.01) == model.z_threshold(0.01)
+    assert again.threshold(3, 1, 0.05, "global") == model.threshold(3, 1, 0.05, "global")
 
 
 def test_torus_is_significant_and_gaussian_sky_is_not(torus_setup):
     # CSS 1998 geometry: a cubic torus of side L = 2 cos(40 deg) chi shows back-to-back circles of radius 40 deg
-    # (translation: flip true); with the data's processing and 40 calibration skies its peak has p_global < 0.01
+    # (translation: flip true); with the data's processing and 40 calibration skies its peak has p_global = 1/41
     cfg, prepared, ctx, model = torus_setup
     _, pool = cal.grid_peaks(prepared, cfg.search, key="torus-data")
     ir = model.radius_index(40.0)
-    p, method = model.p_global(ir, 1, pool.peak_s[ir, 1])
-    assert p < 0.01, (pool.peak_s[ir], p)
-    best = min((model.p_global(i, f, pool.peak_s[i, f])[0], i, f) for i in range(len(model.radii)) for f in (0, 1))
-    assert best[1:] == (ir, 1)
+    p = model.p_global(ir, 1, pool.peak_s[ir, 1])
+    assert p == pytest.approx(1 / 41), (pool.peak_s[ir], p)            # the floor: beyond every simulation
+    best = min((model.p_global(i, f, pool.peak_s[i, f]), -model.z(i, f, pool.peak_s[i, f]), i, f)
+               for i in range(len(model.radii)) for f in (0, 1))
+    assert best[2:] == (ir, 1)
     # an isotropic sky with the same processing (held-out simulation) is not
     iso = cal.null_peaks(ctx, 500)
-    p_iso = min(model.p_global(i, f, iso[i, f])[0] for i in range(len(model.radii)) for f in (0, 1))
-    assert p_iso > 0.01
+    p_iso = min(model.p_global(i, f, iso[i, f]) for i in range(len(model.radii)) for f in (0, 1))
+    assert p_iso > 0.05
 
 
 def test_annotate_adds_p_values(torus_setup):
     cfg, prepared, ctx, model = torus_setup
     t = Table({"radius_deg": [40.2, 40.0, 70.0, 20.0], "flip": [True, True, False, False],
                "s_grid": [0.95, 0.7, 0.5, 0.5], "s": [0.97, 0.71, 0.52, 0.5]})
-    out = cal.annotate(t, model)
-    assert {"z", "p_local", "p_global", "p_local_method", "p_global_method"} <= set(out.colnames)
-    assert out["p_global"][0] < out["p_global"][1]             # larger S, smaller p at the same radius
+    out = cal.annotate(t, model, level=0.05)
+    assert {"z", "p_local", "p_global", "beyond_sims", "p_global_tail", "significant"} <= set(out.colnames)
+    # rows come in the calibrated ranking: p_global, then z
+    assert list(out["s_grid"][:2]) == [0.95, 0.7]
+    assert np.all(np.diff(out["p_global"]) >= 0)
+    assert out["p_global"][0] <= out["p_global"][1]            # larger S, no larger p at the same radius
+    assert out["z"][0] > out["z"][1]
     assert out["p_local"][0] == model.p_local(model.radius_index(40.0), 1, 0.95)[0]
-    assert np.all(out["p_global"] >= out["p_local"] - 0.02)    # looking everywhere costs significance
-    assert out["p_local"][3] > out["p_local"][2]                # the same S is less rare at small radii
+    assert np.all(out["p_global"] >= out["p_local"])           # looking everywhere costs significance
+    assert bool(out["beyond_sims"][0]) and out["p_local"][0] == pytest.approx(1 / 41)
+    by_s = {float(r["s_grid"]) if r["radius_deg"] != 20.0 else -1.0: r for r in out}
+    assert by_s[-1.0]["p_local"] > by_s[0.5]["p_local"]        # the same S is less rare at small radii
     assert cal.best_global(out)["s_grid"] == 0.95
+    assert bool(out["significant"][0]) and not np.any(out["significant"][2:])
+    # at a level 40 simulations cannot resolve, nothing is significant
+    assert not np.any(cal.annotate(t, model, level=0.01)["significant"])

@@ -11,7 +11,7 @@ import scipy.stats
 
 from twinring import calibrate as cal
 from twinring import inject, prepare
-from twinring.config import config_from_dict
+from twinring.config import InputError, config_from_dict
 from twinring.skymap import SkyMap
 from twinring.topology import skies
 
@@ -23,7 +23,9 @@ def campaign_cfg(**inj):
         "prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": 4.0},
         "search": {"nside_centers": 16, "radius_deg": [20, 80, 10], "refine": False},
         "calibrate": {"simulations": 40},
-        "inject": dict({"radii_deg": [40.0, 60.0], "realizations": 3, "noise_uk_arcmin": 500.0}, **inj),
+        # the machinery is checked on Sachs-Wolfe skies, where circles match exactly (CSS 1998)
+        "inject": dict({"radii_deg": [40.0, 60.0], "realizations": 3, "noise_uk_arcmin": 500.0, "physics": "sw"},
+                       **inj),
         "compute": {"progress": False},
     })
 
@@ -137,6 +139,27 @@ def test_full_search_campaign(setup):
         assert r["in_range"]
         if r["detected"]:
             assert abs(r["radius_found_deg"] - 60.0) <= full.inject.radius_tol_deg
+
+
+def test_defaults_are_full_physics_and_a_resolved_rate(setup):
+    # the Doppler and ISW terms differ between the two views of a circle (common practice, no source): campaigns
+    # default to CAMB's full transfer functions, and the threshold rate must be one the simulations resolve
+    cfg, shape, sky, model = setup
+    assert config_from_dict({}).inject.physics == "full"
+    assert inject.injection_rate(cfg, model) == cfg.calibrate.significance
+    strict = campaign_cfg(false_alarm=0.01)                      # 30 simulations cannot resolve 1 %
+    with pytest.raises(InputError, match="inject.false_alarm.*needs at least 99"):
+        inject.injection_rate(strict, model)
+    assert "Sachs-Wolfe only" in inject.physics_label("sw") and "ISW" in inject.physics_label("full")
+
+
+def test_campaign_without_visible_circles_is_refused():
+    # CSS 1998: a cubic torus of side L >= 2 chi shows no circle; L = 2 cos 85 deg gives 85 deg circles,
+    # outside a 20-80 deg search
+    for sizes, what in (([2.5], "no circle"), ([2 * math.cos(math.radians(85.0))], "radius 85.0 deg")):
+        cfg = campaign_cfg(sizes=sizes)
+        with pytest.raises(InputError, match=f"inject.sizes: .*{what}"):
+            inject.campaign_sizes(cfg, inject.shape_from_config(cfg), cfg.search)
 
 
 def test_instrument_defaults():

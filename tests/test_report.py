@@ -52,7 +52,7 @@ def fake_run(d, with_bound=True, with_calibration=True):
         rec = inject.recovery_table(inject.injections_table(rows))
         write_table(rec, d / "recovery.ecsv", {"space": "E1", "shape_lengths": [1.0, 1.0, 1.0], "mode": "targeted",
                                                "threshold": "global", "false_alarm": 0.01, "distance_per_size": 1.0})
-        row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)")
+        row = bound.bound_row(rec, 0.95, 0.01, [], 2.0, 1.0, 13.9, "cubic three-torus (E1)", point_fraction=True)
         write_table(bound.bound_table(row), d / "bound.ecsv")
     return model, peaks, cand
 
