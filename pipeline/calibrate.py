@@ -447,6 +447,8 @@ def annotate(table: Table, model: NullModel, s_col="s_grid", level=None) -> Tabl
         t["significant"] = np.asarray([ok and np.isfinite(p) and p <= level for p in cols["p_global"]], bool)
     if len(t):
         t = t[rank_order(t, s_col)]
+        if "rank" in t.colnames:
+            t["rank"] = np.arange(1, len(t) + 1)
     return t
 
 

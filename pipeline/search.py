@@ -284,8 +284,24 @@ def _offset(c, u, v, dx, dy):
     return rings.unit(c + math.radians(dx) * u + math.radians(dy) * v)
 
 
-def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8):
-    """Best S over twist for one pair at any centres and radius: (s, twist_ref_rad, flip) per sense."""
+def valid_fraction(plan: SearchPlan, c1, c2, radius_deg):
+    """Smaller of the two rings' unmasked fractions (1 on a full sky)."""
+    if plan.mask is None:
+        return 1.0
+    alpha = math.radians(radius_deg)
+    nsamp = rings.samples_for(alpha, plan.lmax)
+    pts = np.concatenate([rings.ring_points(c1, alpha, nsamp), rings.ring_points(c2, alpha, nsamp)])
+    w = rings.mask_at(plan.mask, pts)
+    return float(min(w[0].mean(), w[1].mean()))
+
+
+def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8, min_valid=None):
+    """Best S over twist for one pair at any centres and radius: (s, twist_ref_rad) per sense.
+
+    A pair whose rings have less than ``min_valid`` (default ``plan.min_valid_fraction``) of their
+    samples unmasked gets S = -inf.
+    """
+    min_valid = plan.min_valid_fraction if min_valid is None else float(min_valid)
     alpha = math.radians(radius_deg)
     nsamp = rings.samples_for(alpha, plan.lmax)
     pts = np.concatenate([rings.ring_points(c1, alpha, nsamp), rings.ring_points(c2, alpha, nsamp)])
@@ -298,7 +314,7 @@ def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8):
             n_out = curve.size
         else:
             u1, u2 = wts[0], wts[1]
-            if min(u1.mean(), u2.mean()) < plan.min_valid_fraction:
+            if min(u1.mean(), u2.mean()) < min_valid:
                 out.append((-np.inf, 0.0))
                 continue
             curve = s_curve(vals[0], vals[1], flip, plan.weighting, u1, u2)
@@ -314,7 +330,13 @@ def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8):
 
 
 def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
-    """Local maximisation of S over centres and radius (Nelder-Mead), twist maximised inside."""
+    """Local maximisation of S over centres and radius (Nelder-Mead), twist maximised inside.
+
+    The refined pair keeps at least the unmasked fraction of the grid pair it starts from (and
+    ``min_valid_fraction``): moving rings into the mask, where fewer samples count, would raise
+    S by chance alone.
+    """
+    v0 = max(plan.min_valid_fraction, valid_fraction(plan, c1, c2, radius_deg) - 1e-9)
     u1, v1 = _tangent_basis(c1)
     u2, v2 = _tangent_basis(c2)
     step = plan.grid_deg
@@ -334,7 +356,7 @@ def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
         a, b, r = unpack(x)
         if not (r_lo <= r <= r_hi) or abs(x[2]) > 1.5 * r_step or np.any(np.abs(np.delete(x, 2)) > 1.5 * step):
             return 2.0
-        return -pair_statistic(plan, a, b, r)[sense][0]
+        return -pair_statistic(plan, a, b, r, min_valid=v0)[sense][0]
 
     n = 3 if antipodal else 5
     x0 = np.zeros(n)
@@ -350,7 +372,7 @@ def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
     s0 = -negs(x0)
     if -res.fun < s0:   # never worse than the start
         a, b, r = unpack(x0)
-    s, tw = pair_statistic(plan, a, b, r)[sense]
+    s, tw = pair_statistic(plan, a, b, r, min_valid=v0)[sense]
     return a, b, float(min(r, 90.0)), s, tw
 
 
@@ -410,8 +432,10 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
                 a, b, r = c1[idx], c2[idx], float(rad[idx])
         rows.append((a, b, r, s_ref, float(pool.s[idx]), sense, beta_ref))
     if rows:
+        # uncalibrated ranking: grid S (refined s is descriptive only: refinement adds chance gains;
+        # calibration re-ranks by p_global, which is comparable across radii)
         A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
-        R = np.array([x[2] for x in rows]); S = np.array([x[3] for x in rows])
+        R = np.array([x[2] for x in rows]); S = np.array([x[4] for x in rows])
         again = suppress(A, B, R, S, ctol, rtol, limit=top)
         rows = [rows[q] for q in again]
     cand = candidate_table(rows)
