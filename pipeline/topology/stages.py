@@ -61,11 +61,27 @@ def checked_sky_inputs(cfg):
     return space, recipe
 
 
+def _spherical_meta(cfg, space):
+    from ..cosmology import chi_ls_gpc, curvature_radius_gpc
+
+    return {"observer": list(cfg.topology.observer), "euler_deg": list(cfg.topology.euler_deg),
+            "omega_k": cfg.cosmology.omega_k, "chi_ls_gpc": chi_ls_gpc(cfg.cosmology),
+            "curvature_radius_gpc": curvature_radius_gpc(cfg.cosmology),
+            "chi_over_r_source": "astropy LambdaCDM background (twinring.cosmology.chi_over_r)"}
+
+
 def run_predict(cfg, out_dir) -> Path:
     """Write ``circles.ecsv`` (+ ``circles.fits``) for the configured space and observer."""
-    space = space_from_config(cfg.topology, cfg.cosmology, cfg.source)
-    table = predict_circles(space)
-    table.meta.update(_topology_meta(cfg, space))
+    from . import spherical
+
+    if spherical.is_spherical_name(cfg.topology.space):
+        space = spherical.spherical_from_config(cfg.topology, cfg.cosmology, cfg.source)
+        table = spherical.predict_circles(space)
+        table.meta.update(_spherical_meta(cfg, space))
+    else:
+        space = space_from_config(cfg.topology, cfg.cosmology, cfg.source)
+        table = predict_circles(space)
+        table.meta.update(_topology_meta(cfg, space))
     path = Path(out_dir) / "circles.ecsv"
     write_table(table, path, meta=provenance(cfg, stage="predict"))
     return path
@@ -132,8 +148,12 @@ def cmd_predict(args):
     run = open_run(cfg, args.out, args.force, "predict")
     path = run_predict(cfg, run.dir)
     t = read_table(path, "predicted circles")
-    lines = [f"{cfg.topology.space} {list(cfg.topology.lengths)} ({cfg.topology.units}) seen from "
-             f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
+    if t.meta.get("geometry") == "spherical":
+        lines = [f"{cfg.topology.space} (order {t.meta['group_order']}, omega_k {cfg.cosmology.omega_k}, "
+                 f"chi/R {t.meta['chi_over_r']:.4f}) seen from {list(cfg.topology.observer)}: {len(t)} circle pairs"]
+    else:
+        lines = [f"{cfg.topology.space} {list(cfg.topology.lengths)} ({cfg.topology.units}) seen from "
+                 f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
     for r in t[:12]:
         lines.append(f"  radius {r['radius_deg']:6.2f} deg, separation {r['separation_deg']:6.2f} deg, "
                      f"twist {r['twist_deg']:6.1f} deg, flip {bool(r['flip'])}  [{r['element']}]")
