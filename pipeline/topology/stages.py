@@ -91,7 +91,10 @@ def run_sky(cfg, out_dir) -> dict:
     """Write ``sky.fits`` (uK, RING) and, with ``sky.mask: demo``, ``mask.fits``; return their paths."""
     from .. import skymap
     from ..cosmology import chi_ls_gpc, t0_uk
+    from . import spherical
 
+    if spherical.is_spherical_name(cfg.topology.space):
+        return _run_sky_spherical(cfg, out_dir)
     space, recipe = checked_sky_inputs(cfg)
     t_start = time.perf_counter()
     m = make_sky(space, nside=recipe.nside, lmax=recipe.lmax, fwhm_deg=recipe.fwhm_deg, physics=recipe.physics,
@@ -135,6 +138,58 @@ def run_sky(cfg, out_dir) -> dict:
                  ("FSKY", float(np.mean(mask)), "valid fraction")]
         paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=mhead, provenance=provenance(
             cfg, stage="sky-mask"), column_names=["MASK"], column_units="")
+    return paths
+
+
+def _run_sky_spherical(cfg, out_dir) -> dict:
+    """Sachs-Wolfe sky of a spherical space (twinring.topology.skies_spherical)."""
+    from .. import skymap
+    from ..cosmology import chi_ls_gpc, curvature_radius_gpc, t0_uk
+    from . import skies_spherical, spherical
+
+    space = spherical.spherical_from_config(cfg.topology, cfg.cosmology, cfg.source)
+    s = cfg.sky
+    if s.physics != "sw":
+        raise InputError(f"{cfg.source}: sky.physics: found {s.physics!r}; allowed: sw for the spherical space "
+                         f"{space.name}")
+    t_start = time.perf_counter()
+    try:
+        m, info = skies_spherical.make_sky(space, nside=s.nside, lmax=s.lmax, fwhm_deg=s.fwhm_deg, seed=s.seed,
+                                           noise_uk_arcmin=s.noise_uk_arcmin, lmin=s.lmin, kmax_factor=1.0,
+                                           cosmo=cfg.cosmology, nthreads=max(1, cfg.compute.threads),
+                                           return_info=True)
+    except ValueError as exc:
+        raise InputError(f"{cfg.source}: sky.lmax: found {s.lmax}; allowed: a band limit this group can reach ({exc})")
+    elapsed = time.perf_counter() - t_start
+    header = [
+        ("SPACE", space.name, "spherical space S3/Gamma"),
+        ("GORDER", space.order, "group order"),
+        ("OMEGA_K", cfg.cosmology.omega_k, "curvature density"),
+        ("CHI_R", round(space.chi_over_r, 9), "last-scattering radius / curvature radius"),
+        ("R_GPC", round(curvature_radius_gpc(cfg.cosmology), 6), "curvature radius, Gpc"),
+        ("OBSERVER", json.dumps([round(float(x), 9) for x in space.observer]), "observer quaternion w,x,y,z"),
+        ("EULER", json.dumps(list(cfg.topology.euler_deg)), "sky rotation z-y-z, deg"),
+        ("PHYSICS", "sw", "Sachs-Wolfe, invariant S3 modes n = 3..NMAX"),
+        ("NMAX", info["n_max"], "highest S3 eigenspace n (eigenvalue n^2 - 1)"),
+        ("NMODES", info["invariant_modes"], "invariant modes used"),
+        ("SEED", s.seed, "numpy SeedSequence seed"),
+        ("LMAX", s.lmax, "band limit of the map"),
+        ("LMIN", s.lmin, "multipoles below are zero"),
+        ("FWHM_DEG", s.fwhm_deg, "Gaussian beam FWHM, deg"),
+        ("NOISE", s.noise_uk_arcmin, "white noise, uK-arcmin"),
+        ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
+        ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
+        ("SKYSECS", round(elapsed, 3), "generation time, s"),
+    ]
+    out = Path(out_dir)
+    paths = {"sky": skymap.write_map(out / "sky.fits", m, extra_header=header, provenance=provenance(cfg, stage="sky"),
+                                     column_names=["TEMPERATURE"], column_units="uK")}
+    if s.mask == "demo":
+        mask = mask_for_seed(s.nside, s.seed, s.mask_band_deg, s.mask_holes, s.mask_hole_deg)
+        paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=[
+            ("MASKKIND", "demo", "galactic-like band plus round holes; 1 = valid"),
+            ("FSKY", float(np.mean(mask)), "valid fraction")], provenance=provenance(cfg, stage="sky-mask"),
+            column_names=["MASK"], column_units="")
     return paths
 
 
