@@ -115,10 +115,16 @@ def invariant_coefficients(space: SphericalSpace, n_max, rng, weights_of_n):
     u /= np.linalg.norm(u, axis=1, keepdims=True)
     orb = _orbits(space, u)
     beta = np.zeros((n_max + 1, K))
-    for n, k in dims.items():
+    t = np.clip((u @ orb.reshape(-1, 4).T).reshape(K, K, space.order), -1.0, 1.0)    # <u_i, g u_j>
+    u_prev, u_cur = np.zeros_like(t), np.ones_like(t)                                # U_{-1}, U_0
+    for n in range(1, n_max + 1):
+        if n > 1:                                                                    # U_{n-1} = 2t U_{n-2} - U_{n-3}
+            u_prev, u_cur = u_cur, 2.0 * t * u_cur - u_prev
+        k = dims.get(n, 0)
+        if k == 0:
+            continue
         kn = min(K, k + MARGIN)
-        t = np.einsum("id,jgd->ijg", u[:kn], orb[:kn])
-        G = cheb_u(n, t).sum(axis=2)
+        G = u_cur[:kn, :kn].sum(axis=2)
         G = 0.5 * (G + G.T)
         lam, V = np.linalg.eigh(G)
         lam, V = lam[::-1][:k], V[:, ::-1][:, :k]
