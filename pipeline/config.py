@@ -132,17 +132,33 @@ class ComputeSection:
 
 @dataclass(frozen=True)
 class TopologySection:
-    """The flat space (see pipeline/topology/manifolds.py for each space's lengths)."""
-    space: str = _f("E1", "str", choices=tuple(f"E{i}" for i in range(1, 19)))
+    """The space: a flat one E1-E18 (see pipeline/topology/manifolds.py for each space's lengths) or a
+    spherical one L(p,q), D*4n, T*, O*, I* (pipeline/topology/spherical.py; its size relative to the
+    last-scattering sphere comes from ``cosmology.omega_k``, ``lengths`` and ``units`` are not used, and
+    ``observer`` is a quaternion [w, x, y, z] or a step [x, y, z] from the identity in curvature radii)."""
+    space: str = _f("E1", "str")
     lengths: tuple = _f((1.2, 1.2, 1.2), "floats")
     angles_deg: tuple | None = _f(None, "floats?")
     units: str = _f("chi", "str", choices=("chi", "Gpc"))
-    observer: tuple = _f((0.0, 0.0, 0.0), "floats", length=3)
+    observer: tuple = _f((0.0, 0.0, 0.0), "floats")
     euler_deg: tuple = _f((0.0, 0.0, 0.0), "floats", length=3)
 
     def check(self, where):
-        from .topology.manifolds import ParamError, check_params
+        from .topology.manifolds import SPACE_NAMES, ParamError, check_params
+        from .topology import spherical
 
+        if self.space not in SPACE_NAMES:
+            try:
+                spherical.check_name(self.space)
+            except spherical.SphericalParamError:
+                raise where("space", self.space, " | ".join(SPACE_NAMES) + " | " + spherical.NAME_TEXT)
+            if self.angles_deg is not None:
+                raise where("angles_deg", list(self.angles_deg), f"null for the spherical space {self.space}")
+            try:
+                spherical.observer_quaternion(self.observer)
+            except spherical.SphericalParamError as exc:
+                raise where(exc.key, exc.found, exc.allowed)
+            return
         try:
             check_params(self.space, self.lengths, self.angles_deg, self.observer, self.euler_deg)
         except ParamError as exc:
@@ -187,6 +203,7 @@ class CosmologySection:
     n_s: float = _f(0.9665, "float", min=0.5, max=1.5)
     pivot_mpc: float = _f(0.05, "float", min=1e-5, max=10.0)
     z_ls: float = _f(1089.92, "float", min=10.0, max=1e5)
+    omega_k: float = _f(0.0, "float", min=-0.5, max=0.5)
 
     def check(self, where):
         pass
@@ -442,7 +459,22 @@ def _cross_checks(cfg: RunConfig):
         hook(cfg)
 
 
-CROSS_CHECKS: list = []
+def _curvature_matches_space(cfg: RunConfig):
+    """A spherical space needs omega_k < 0; a flat space named in the file needs omega_k = 0."""
+    from .topology.spherical import is_spherical_name
+
+    if "topology" not in cfg.present:
+        return
+    ok = cfg.cosmology.omega_k
+    if is_spherical_name(cfg.topology.space) and ok >= 0.0:
+        raise InputError(f"{cfg.source}: cosmology.omega_k: found {_fmt(ok)}; allowed: a negative value "
+                         f"(positive curvature) for the spherical space {cfg.topology.space}")
+    if not is_spherical_name(cfg.topology.space) and ok != 0.0:
+        raise InputError(f"{cfg.source}: cosmology.omega_k: found {_fmt(ok)}; allowed: 0 for the flat space "
+                         f"{cfg.topology.space}")
+
+
+CROSS_CHECKS: list = [_curvature_matches_space]
 
 
 def load_config(path, overrides: dict | None = None) -> RunConfig:

@@ -39,12 +39,14 @@ class _Defaults:
     n_s: float = 0.9665
     pivot_mpc: float = 0.05
     z_ls: float = 1089.92
+    omega_k: float = 0.0
 
 
 def _params(cosmo):
     c = cosmo if cosmo is not None else _Defaults()
     return (float(c.h0), float(c.ombh2), float(c.omch2), float(c.mnu), float(c.neff), float(c.tcmb),
-            float(c.tau), float(c.a_s), float(c.n_s), float(c.pivot_mpc), float(c.z_ls))
+            float(c.tau), float(c.a_s), float(c.n_s), float(c.pivot_mpc), float(c.z_ls),
+            float(getattr(c, "omega_k", 0.0)))
 
 
 def t0_uk(cosmo=None) -> float:
@@ -53,14 +55,25 @@ def t0_uk(cosmo=None) -> float:
 
 
 def astropy_cosmology(cosmo=None):
-    """A flat Lambda-CDM astropy cosmology with the configured parameters."""
-    from astropy import units as u
-    from astropy.cosmology import FlatLambdaCDM
+    """A Lambda-CDM astropy cosmology with the configured parameters.
 
-    h0, ombh2, omch2, mnu, neff, tcmb = _params(cosmo)[:6]
+    Flat (``FlatLambdaCDM``) when ``omega_k`` is 0; otherwise ``LambdaCDM`` with the same
+    physical matter densities and H0, the dark energy density lowered by ``omega_k`` so that
+    astropy's own curvature density ``Ok0`` equals ``omega_k``.
+    """
+    from astropy import units as u
+    from astropy.cosmology import FlatLambdaCDM, LambdaCDM
+
+    p = _params(cosmo)
+    h0, ombh2, omch2, mnu, neff, tcmb = p[:6]
+    omega_k = p[11]
     h = h0 / 100.0
-    return FlatLambdaCDM(H0=h0, Om0=(ombh2 + omch2) / h**2, Ob0=ombh2 / h**2, Tcmb0=tcmb, Neff=neff,
+    flat = FlatLambdaCDM(H0=h0, Om0=(ombh2 + omch2) / h**2, Ob0=ombh2 / h**2, Tcmb0=tcmb, Neff=neff,
                          m_nu=[0.0, 0.0, mnu] * u.eV)
+    if omega_k == 0.0:
+        return flat
+    return LambdaCDM(H0=h0, Om0=flat.Om0, Ode0=flat.Ode0 - omega_k, Ob0=flat.Ob0, Tcmb0=tcmb, Neff=neff,
+                     m_nu=[0.0, 0.0, mnu] * u.eV)
 
 
 @functools.lru_cache(maxsize=16)
@@ -72,8 +85,25 @@ def _chi_gpc(params):
 
 
 def chi_ls_gpc(cosmo=None) -> float:
-    """Comoving distance to last scattering in Gpc (astropy, flat Lambda-CDM)."""
+    """Comoving (line-of-sight) distance to last scattering in Gpc (astropy; curved when omega_k != 0)."""
     return _chi_gpc(_params(cosmo))
+
+
+C_KM_S = 299792.458             # speed of light, km/s
+
+
+def curvature_radius_gpc(cosmo=None) -> float:
+    """Curvature radius R = c / (H0 sqrt|Omega_k|) in Gpc; infinite when omega_k = 0."""
+    p = _params(cosmo)
+    if p[11] == 0.0:
+        return math.inf
+    return C_KM_S / (p[0] * math.sqrt(abs(p[11]))) / 1000.0
+
+
+def chi_over_r(cosmo=None) -> float:
+    """chi / R: the radius of the last-scattering sphere in curvature radii (0 when flat)."""
+    r = curvature_radius_gpc(cosmo)
+    return 0.0 if math.isinf(r) else chi_ls_gpc(cosmo) / r
 
 
 def chi_ls_gly(cosmo=None) -> float:
@@ -86,9 +116,9 @@ def camb_params(cosmo=None, lmax=128, max_eta_k=None, k_accuracy=2.0):
     """CAMBparams for the configured cosmology, scalar modes only."""
     import camb
 
-    h0, ombh2, omch2, mnu, neff, tcmb, tau, a_s, n_s, pivot, _ = _params(cosmo)
+    h0, ombh2, omch2, mnu, neff, tcmb, tau, a_s, n_s, pivot, _, omega_k = _params(cosmo)
     p = camb.CAMBparams()
-    p.set_cosmology(H0=h0, ombh2=ombh2, omch2=omch2, mnu=mnu, nnu=neff, tau=tau, TCMB=tcmb)
+    p.set_cosmology(H0=h0, ombh2=ombh2, omch2=omch2, mnu=mnu, nnu=neff, tau=tau, TCMB=tcmb, omk=omega_k)
     p.InitPower.set_params(As=a_s, ns=n_s, pivot_scalar=pivot)
     p.set_for_lmax(int(lmax), max_eta_k=max_eta_k, lens_potential_accuracy=0)
     p.WantTensors = False

@@ -61,11 +61,27 @@ def checked_sky_inputs(cfg):
     return space, recipe
 
 
+def _spherical_meta(cfg, space):
+    from ..cosmology import chi_ls_gpc, curvature_radius_gpc
+
+    return {"observer": list(cfg.topology.observer), "euler_deg": list(cfg.topology.euler_deg),
+            "omega_k": cfg.cosmology.omega_k, "chi_ls_gpc": chi_ls_gpc(cfg.cosmology),
+            "curvature_radius_gpc": curvature_radius_gpc(cfg.cosmology),
+            "chi_over_r_source": "astropy LambdaCDM background (twinring.cosmology.chi_over_r)"}
+
+
 def run_predict(cfg, out_dir) -> Path:
     """Write ``circles.ecsv`` (+ ``circles.fits``) for the configured space and observer."""
-    space = space_from_config(cfg.topology, cfg.cosmology, cfg.source)
-    table = predict_circles(space)
-    table.meta.update(_topology_meta(cfg, space))
+    from . import spherical
+
+    if spherical.is_spherical_name(cfg.topology.space):
+        space = spherical.spherical_from_config(cfg.topology, cfg.cosmology, cfg.source)
+        table = spherical.predict_circles(space)
+        table.meta.update(_spherical_meta(cfg, space))
+    else:
+        space = space_from_config(cfg.topology, cfg.cosmology, cfg.source)
+        table = predict_circles(space)
+        table.meta.update(_topology_meta(cfg, space))
     path = Path(out_dir) / "circles.ecsv"
     write_table(table, path, meta=provenance(cfg, stage="predict"))
     return path
@@ -75,7 +91,10 @@ def run_sky(cfg, out_dir) -> dict:
     """Write ``sky.fits`` (uK, RING) and, with ``sky.mask: demo``, ``mask.fits``; return their paths."""
     from .. import skymap
     from ..cosmology import chi_ls_gpc, t0_uk
+    from . import spherical
 
+    if spherical.is_spherical_name(cfg.topology.space):
+        return _run_sky_spherical(cfg, out_dir)
     space, recipe = checked_sky_inputs(cfg)
     t_start = time.perf_counter()
     m = make_sky(space, nside=recipe.nside, lmax=recipe.lmax, fwhm_deg=recipe.fwhm_deg, physics=recipe.physics,
@@ -122,6 +141,58 @@ def run_sky(cfg, out_dir) -> dict:
     return paths
 
 
+def _run_sky_spherical(cfg, out_dir) -> dict:
+    """Sachs-Wolfe sky of a spherical space (twinring.topology.skies_spherical)."""
+    from .. import skymap
+    from ..cosmology import chi_ls_gpc, curvature_radius_gpc, t0_uk
+    from . import skies_spherical, spherical
+
+    space = spherical.spherical_from_config(cfg.topology, cfg.cosmology, cfg.source)
+    s = cfg.sky
+    if s.physics != "sw":
+        raise InputError(f"{cfg.source}: sky.physics: found {s.physics!r}; allowed: sw for the spherical space "
+                         f"{space.name}")
+    t_start = time.perf_counter()
+    try:
+        m, info = skies_spherical.make_sky(space, nside=s.nside, lmax=s.lmax, fwhm_deg=s.fwhm_deg, seed=s.seed,
+                                           noise_uk_arcmin=s.noise_uk_arcmin, lmin=s.lmin, kmax_factor=1.0,
+                                           cosmo=cfg.cosmology, nthreads=max(1, cfg.compute.threads),
+                                           return_info=True)
+    except ValueError as exc:
+        raise InputError(f"{cfg.source}: sky.lmax: found {s.lmax}; allowed: a band limit this group can reach ({exc})")
+    elapsed = time.perf_counter() - t_start
+    header = [
+        ("SPACE", space.name, "spherical space S3/Gamma"),
+        ("GORDER", space.order, "group order"),
+        ("OMEGA_K", cfg.cosmology.omega_k, "curvature density"),
+        ("CHI_R", round(space.chi_over_r, 9), "last-scattering radius / curvature radius"),
+        ("R_GPC", round(curvature_radius_gpc(cfg.cosmology), 6), "curvature radius, Gpc"),
+        ("OBSERVER", json.dumps([round(float(x), 9) for x in space.observer]), "observer quaternion w,x,y,z"),
+        ("EULER", json.dumps(list(cfg.topology.euler_deg)), "sky rotation z-y-z, deg"),
+        ("PHYSICS", "sw", "Sachs-Wolfe, invariant S3 modes n = 3..NMAX"),
+        ("NMAX", info["n_max"], "highest S3 eigenspace n (eigenvalue n^2 - 1)"),
+        ("NMODES", info["invariant_modes"], "invariant modes used"),
+        ("SEED", s.seed, "numpy SeedSequence seed"),
+        ("LMAX", s.lmax, "band limit of the map"),
+        ("LMIN", s.lmin, "multipoles below are zero"),
+        ("FWHM_DEG", s.fwhm_deg, "Gaussian beam FWHM, deg"),
+        ("NOISE", s.noise_uk_arcmin, "white noise, uK-arcmin"),
+        ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
+        ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
+        ("SKYSECS", round(elapsed, 3), "generation time, s"),
+    ]
+    out = Path(out_dir)
+    paths = {"sky": skymap.write_map(out / "sky.fits", m, extra_header=header, provenance=provenance(cfg, stage="sky"),
+                                     column_names=["TEMPERATURE"], column_units="uK")}
+    if s.mask == "demo":
+        mask = mask_for_seed(s.nside, s.seed, s.mask_band_deg, s.mask_holes, s.mask_hole_deg)
+        paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=[
+            ("MASKKIND", "demo", "galactic-like band plus round holes; 1 = valid"),
+            ("FSKY", float(np.mean(mask)), "valid fraction")], provenance=provenance(cfg, stage="sky-mask"),
+            column_names=["MASK"], column_units="")
+    return paths
+
+
 # --------------------------------------------------------------------------- command-line handlers
 def cmd_predict(args):
     from ..config import load_config
@@ -132,8 +203,12 @@ def cmd_predict(args):
     run = open_run(cfg, args.out, args.force, "predict")
     path = run_predict(cfg, run.dir)
     t = read_table(path, "predicted circles")
-    lines = [f"{cfg.topology.space} {list(cfg.topology.lengths)} ({cfg.topology.units}) seen from "
-             f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
+    if t.meta.get("geometry") == "spherical":
+        lines = [f"{cfg.topology.space} (order {t.meta['group_order']}, omega_k {cfg.cosmology.omega_k}, "
+                 f"chi/R {t.meta['chi_over_r']:.4f}) seen from {list(cfg.topology.observer)}: {len(t)} circle pairs"]
+    else:
+        lines = [f"{cfg.topology.space} {list(cfg.topology.lengths)} ({cfg.topology.units}) seen from "
+                 f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
     for r in t[:12]:
         lines.append(f"  radius {r['radius_deg']:6.2f} deg, separation {r['separation_deg']:6.2f} deg, "
                      f"twist {r['twist_deg']:6.1f} deg, flip {bool(r['flip'])}  [{r['element']}]")
