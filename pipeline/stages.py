@@ -74,11 +74,16 @@ def listed_pairs(cfg):
 def search_prepared(cfg, run, prepared, runner=None):
     """Run the search on a prepared map and write candidates.ecsv and peaks.ecsv."""
     table = listed_pairs(cfg)
+    warn = search_mod.grid_warning(prepared, cfg.search)
+    if warn:
+        run.log(warn)
+    cand.meta["grid_warning"] = warn or ""
     plan, pool, cand, peaks = search_mod.run_search(
         prepared, cfg.search, cfg.compute, table, runner=runner, progress=run.progress, key=cfg.hash())
     meta = provenance(cfg, input_files(cfg), "search")
     meta.update(family=cfg.search.family, weighting=cfg.search.weighting, pairs_per_radius=int(pool.pairs_scanned // max(1, len(plan.radii_deg))),
-                twist_convention="circle 1 at phase phi matches circle 2 at phi + twist (flip false) or twist - phi (flip true)")
+                twist_convention="circle 1 at phase phi matches circle 2 at phi + twist (flip false) or twist - phi (flip true)",
+                grid_warning=warn or "")
     meta.update({f"screen_{k}" if not k.startswith("screen") else k: v
                  for k, v in getattr(plan, "screen", {}).items() if v is not None})
     write_table(cand, run.dir / "candidates.ecsv", meta)
@@ -89,6 +94,8 @@ def search_prepared(cfg, run, prepared, runner=None):
 def summary_lines(cand, pool, plan):
     lines = [f"scanned {pool.pairs_scanned:,} circle pairs ({len(plan.radii_deg)} radii x both senses, all twists)",
              f"{len(cand)} candidates written"]
+    if cand.meta.get("grid_warning"):
+        lines.append(cand.meta["grid_warning"])
     if len(cand):
         b = cand[0]
         lines.insert(0, (f"best: s = {b['s']:.3f} at radius {b['radius_deg']:.2f} deg, centres "

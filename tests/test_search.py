@@ -193,3 +193,34 @@ def test_ring_cache_never_serves_another_sky(torus_sky):
         del p, plan      # the first sky's arrays die, so their ids may be handed to the second
         gc.collect()
     np.testing.assert_allclose(results[1], -results[0], atol=1e-4)
+
+
+def test_grid_retention_matches_a_torus_measurement():
+    # CSS 1998 geometry: the face pair of a cubic torus (L = 1.2 chi) lies along +-x at 53.13 deg. Moving both
+    # circles off the true circle by delta (radius and centre) lowers S by about the map's own correlation at the
+    # matched samples' lag 2 delta, xi(2 delta)/xi(0) (xi from healpy.alm2cl through Legendre sums, numpy);
+    # measured here on the torus sky, with both weightings
+    m = periodic_field_on_sphere((L_TORUS,) * 3, 64, kmax=140, seed=11)
+    prepared = prepared_from_map(m, lmax=128, fwhm_deg=3.0)
+    prepared.fwhm_deg = 3.0
+    for weighting in ("m", "flat"):
+        _retention_case(prepared, weighting)
+    # a coarse grid is flagged, a fine one is not
+    coarse = SearchSection(nside_centers=8, radius_deg=(20.0, 80.0, 5.0))
+    assert "coarse grid" in search.grid_warning(prepared, coarse)
+    assert search.grid_warning(prepared, SearchSection(nside_centers=64, radius_deg=(20.0, 80.0, 0.5))) is None
+
+
+def _retention_case(prepared, weighting):
+    scfg = SearchSection(nside_centers=16, radius_deg=(40.0, 60.0, 1.0), weighting=weighting)
+    plan = search.make_plan(prepared, scfg, None, None, key=f"retention-{weighting}")
+    x = np.array([1.0, 0.0, 0.0])
+    s_true = search.pair_statistic(plan, x, -x, FACE_DEG)[1][0]
+    assert s_true > 0.9
+    for dr, dc in ((2.0, 0.0), (0.0, 3.0), (3.0, 3.0), (5.0, 7.3)):
+        delta, keep = search.grid_retention(prepared.alm, prepared.lmax, dr, dc)
+        tilt = math.radians(0.5 * dc)
+        c1 = np.array([math.cos(tilt), math.sin(tilt), 0.0])
+        measured = np.mean([search.pair_statistic(plan, c1, -c1, FACE_DEG + sgn * 0.5 * dr)[1][0]
+                            for sgn in (-1, 1)]) / s_true
+        assert measured == pytest.approx(keep, abs=0.12), (weighting, dr, dc, delta, keep, measured)
