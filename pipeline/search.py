@@ -70,6 +70,7 @@ class ChunkResult:
     peak_s: np.ndarray = field(default=None)      # (2,) best s per sense in this chunk
     peak_idx: np.ndarray = field(default=None)    # (2, 3): i, j, k of that best
     pairs: int = 0
+    moments: np.ndarray = field(default=None)     # (2, 3): count, sum, sum of squares of every pair's S per sense
 
 
 # --------------------------------------------------------------------------- plan
@@ -209,11 +210,22 @@ def scan_chunk(plan: SearchPlan, chunk) -> ChunkResult:
             peak_idx[sense] = (i[b], j[b], k[sense, b])
     cat = (lambda xs, dt: np.concatenate(xs).astype(dt) if xs else np.zeros(0, dt))
     res = ChunkResult(chunk, cat(keep_s, np.float64), cat(keep_i, np.int64), cat(keep_j, np.int64),
-                      cat(keep_sense, np.int8), cat(keep_k, np.int64), peak_s, peak_idx, int(i.size))
+                      cat(keep_sense, np.int8), cat(keep_k, np.int64), peak_s, peak_idx, int(i.size),
+                      s_moments(s))
     order = np.lexsort((res.k, res.sense, res.j, res.i, -res.s))
     for name in ("s", "i", "j", "sense", "k"):
         setattr(res, name, getattr(res, name)[order])
     return res
+
+
+def s_moments(s) -> np.ndarray:
+    """(2, 3): count, sum and sum of squares of the finite S of every scanned pair, per sense."""
+    out = np.zeros((2, 3))
+    for sense in (0, 1):
+        if s.ndim == 2 and s.shape[1]:
+            v = s[sense][np.isfinite(s[sense])]
+            out[sense] = (v.size, v.sum(), np.sum(v * v))
+    return out
 
 
 # --------------------------------------------------------------------------- combining chunks
@@ -229,6 +241,7 @@ class Pool:
     peak_s: np.ndarray        # (n_radii, 2)
     peak_idx: np.ndarray      # (n_radii, 2, 3)
     pairs_scanned: int
+    moments: np.ndarray = None   # (n_radii, 2, 3): count, sum, sum of squares of all pairs' S (None if unknown)
 
 
 def combine(plan: SearchPlan, results) -> Pool:
@@ -248,6 +261,12 @@ def combine(plan: SearchPlan, results) -> Pool:
             if cand > cur or (cand == cur and np.isfinite(cand) and tuple(r.peak_idx[sense]) < tuple(peak_idx[ir, sense])):
                 peak_s[ir, sense] = cand
                 peak_idx[ir, sense] = r.peak_idx[sense]
+    moments = np.zeros((nr, 2, 3))
+    for r in results:
+        if getattr(r, "moments", None) is None:
+            moments = None
+            break
+        moments[r.chunk[0]] += r.moments
     cols = {n: [] for n in ("radius_index", "s", "i", "j", "sense", "k")}
     for ir in range(nr):
         if not parts[ir]:
@@ -268,7 +287,24 @@ def combine(plan: SearchPlan, results) -> Pool:
             cols[n].append(arr[sel])
     cat = {n: (np.concatenate(v) if v else np.zeros(0)) for n, v in cols.items()}
     return Pool(cat["radius_index"].astype(int), cat["s"].astype(float), cat["i"].astype(int), cat["j"].astype(int),
-                cat["sense"].astype(int), cat["k"].astype(int), peak_s, peak_idx, total)
+                cat["sense"].astype(int), cat["k"].astype(int), peak_s, peak_idx, total, moments)
+
+
+def grid_z(pool: Pool) -> np.ndarray:
+    """Each kept pair's grid S standardised by all scanned pairs of its radius and sense: (S - mean) / std.
+
+    Chance matches are larger on small circles (fewer independent samples), so raw S is not
+    comparable across radii; nearly all scanned pairs are unrelated circles, so their mean and
+    spread at one radius set the scale there.  Falls back to S itself when the moments are unknown.
+    """
+    if pool.moments is None or pool.s.size == 0:
+        return np.asarray(pool.s, float)
+    n, s1, s2 = (pool.moments[pool.radius_index, pool.sense, q] for q in range(3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = s1 / n
+        sd = np.sqrt(np.maximum(s2 / n - mean**2, 0.0) * n / np.maximum(n - 1, 1))
+        z = (pool.s - mean) / sd
+    return np.where(np.isfinite(z), z, -np.inf)
 
 
 # --------------------------------------------------------------------------- refinement
@@ -455,7 +491,8 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
     rad = radii[pool.radius_index] if pool.s.size else np.zeros(0)
     ctol = 2.5 * plan.grid_deg
     rtol = radius_window(plan)
-    keep = suppress(c1, c2, rad, pool.s, ctol, rtol, limit=top + max(5, top // 5))
+    zg = grid_z(pool)
+    keep = suppress(c1, c2, rad, zg, ctol, rtol, limit=top + max(5, top // 5))
     antipodal = plan.family == "antipodal"
     rows = []
     iterator = keep if progress is None else progress(keep, desc="refine", unit="cand")
@@ -470,13 +507,13 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
                 s_ref, beta_ref = s_new, beta_new
             else:
                 a, b, r = c1[idx], c2[idx], float(rad[idx])
-        rows.append((a, b, r, s_ref, float(pool.s[idx]), sense, beta_ref))
+        rows.append((a, b, r, s_ref, float(pool.s[idx]), sense, beta_ref, float(zg[idx])))
     if rows:
-        # uncalibrated ranking: grid S (refined s is descriptive only: refinement adds chance gains;
-        # calibration re-ranks by p_global, which is comparable across radii)
+        # uncalibrated ranking: grid S standardised at its radius and sense (refined s is descriptive
+        # only: refinement adds chance gains); calibration re-ranks by p_global
         A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
-        R = np.array([x[2] for x in rows]); S = np.array([x[4] for x in rows])
-        again = suppress(A, B, R, S, ctol, rtol, limit=top)
+        R = np.array([x[2] for x in rows]); Z = np.array([x[7] for x in rows])
+        again = suppress(A, B, R, Z, ctol, rtol, limit=top)
         rows = [rows[q] for q in again]
     cand = candidate_table(rows)
     return cand, peak_table(plan, pool)
@@ -484,9 +521,10 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
 
 def candidate_table(rows) -> Table:
     names = ["rank", "radius_deg", "lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg", "separation_deg",
-             "twist_deg", "flip", "s", "s_grid"]
+             "twist_deg", "flip", "s", "s_grid", "z_grid"]
     if not rows:
-        return Table(names=names, dtype=[int, float, float, float, float, float, float, float, bool, float, float])
+        return Table(names=names, dtype=[int, float, float, float, float, float, float, float, bool, float, float,
+                                         float])
     A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
     flip = np.array([x[5] == 1 for x in rows])
     beta = np.array([x[6] for x in rows])
@@ -502,6 +540,7 @@ def candidate_table(rows) -> Table:
     t["flip"] = flip
     t["s"] = [x[3] for x in rows]
     t["s_grid"] = [x[4] for x in rows]
+    t["z_grid"] = [x[7] if len(x) > 7 else np.nan for x in rows]
     for col in t.colnames:
         if t[col].dtype.kind == "f":
             t[col].info.format = ".6f"

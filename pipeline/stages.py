@@ -77,9 +77,9 @@ def search_prepared(cfg, run, prepared, runner=None):
     warn = search_mod.grid_warning(prepared, cfg.search)
     if warn:
         run.log(warn)
-    cand.meta["grid_warning"] = warn or ""
     plan, pool, cand, peaks = search_mod.run_search(
         prepared, cfg.search, cfg.compute, table, runner=runner, progress=run.progress, key=cfg.hash())
+    cand.meta["grid_warning"] = warn or ""
     meta = provenance(cfg, input_files(cfg), "search")
     meta.update(family=cfg.search.family, weighting=cfg.search.weighting, pairs_per_radius=int(pool.pairs_scanned // max(1, len(plan.radii_deg))),
                 twist_convention="circle 1 at phase phi matches circle 2 at phi + twist (flip false) or twist - phi (flip true)",

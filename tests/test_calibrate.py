@@ -246,3 +246,43 @@ def test_annotate_adds_p_values(torus_setup):
     assert bool(out["significant"][0]) and not np.any(out["significant"][2:])
     # at a level 40 simulations cannot resolve, nothing is significant
     assert not np.any(cal.annotate(t, model, level=0.01)["significant"])
+
+
+@pytest.mark.timeout(900)
+def test_masked_torus_face_pairs_outrank_chance_circles():
+    # CSS 1998 geometry: a cubic torus of side L = 2 cos(40 deg) chi shows three back-to-back face pairs of radius
+    # 40 deg (flip true). Behind a 10 deg galactic-like band mask, refinement could move chance circles into the
+    # mask; the face pairs on the centre grid (x and y; the z face is 3.4 deg off this nside_centers 8 grid, which
+    # grid_warning flags) must rank first, uncalibrated (grid S standardised at its radius) and calibrated
+    # (p_global, 40 simulations), beyond every simulation (p_global = 1/41, the Monte Carlo floor)
+    cfg = config_from_dict({
+        "prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": FWHM},
+        "search": {"nside_centers": 8, "radius_deg": [20, 80, 10], "refine": True, "top": 10},
+        "calibrate": {"simulations": 40, "seed": 5}, "compute": {"progress": False}})
+    L = 2 * math.cos(math.radians(40.0))
+    rot = aligned_rotation()
+    m = periodic_field_on_sphere((L, L, L), NSIDE, kmax=80, seed=8, rotation=rot)
+    m = m + 10.0 * np.random.default_rng(9).standard_normal(m.size)
+    _, lat = rings.vec_to_lonlat(np.array(hp.pix2vec(NSIDE, np.arange(m.size))).T)
+    mask = (np.abs(lat) > 10.0).astype(float)
+    sky = sky_of(m, mask)
+    prepared = prepare.prepare_map(sky, cfg.prepare)
+    from twinring import search as search_mod
+
+    _, _, cand, _ = search_mod.run_search(prepared, cfg.search, cfg.compute, None, key="masked-torus")
+    faces = rot                                   # rows: the torus axes on the sky
+    def face_of(row):
+        a = rings.lonlat_to_vec(row["lon1_deg"], row["lat1_deg"])
+        hit = np.flatnonzero(np.abs(faces @ np.ravel(a)) > math.cos(math.radians(8.0)))
+        return int(hit[0]) if hit.size and abs(row["radius_deg"] - 40.0) < 6 and row["flip"] else -1
+
+    assert sorted(face_of(r) for r in cand[:2]) == [0, 1]               # uncalibrated: standardised grid S
+    assert np.all(np.diff(cand["z_grid"]) <= 0)
+    assert search_mod.grid_warning(prepared, cfg.search) is not None
+    ctx = cal.make_context(cfg, sky, prepared)
+    model = cal.NullModel(np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, 40))
+    ranked = cal.annotate(cand, model, level=0.05)
+    assert sorted(face_of(r) for r in ranked[:2]) == [0, 1]             # calibrated: p_global order
+    assert np.allclose(ranked["p_global"][:2], 1 / 41) and np.all(ranked["p_global"][2:] > 1 / 41)
+    assert np.all(ranked["p_global"] >= ranked["p_local"])
+    assert list(ranked["rank"]) == list(range(1, len(ranked) + 1))
