@@ -165,6 +165,30 @@ def map_to_alm(values, lmax, iterations=3):
     return np.asarray(alm, dtype=np.complex128), use_w
 
 
+MIN_RELATIVE_RMS = 1e-6    # prepared rms / input rms below this: nothing left to search (a constant map)
+
+
+def check_variance(src, sky: SkyMap, out_map, mask_out, prep: PrepareSection):
+    """Refuse a prepared map with (near) zero variance on its usable pixels (InputError, one line).
+
+    A constant map has nothing at l >= 2: after monopole/dipole removal and
+    band limiting only rounding noise is left (about 1e-16 of the input, or
+    1e-8 from pixelisation with nothing removed), which the S statistic would
+    happily "match" (s near 1).  The floor is :data:`MIN_RELATIVE_RMS` of the
+    input's rms about zero on its unmasked pixels.
+    """
+    use = np.asarray(mask_out) > 0.5
+    vals = np.asarray(out_map, float)[use]
+    rms = float(np.std(vals)) if vals.size else 0.0
+    seen = np.asarray(sky.values, float)[np.asarray(sky.mask) > 0]
+    scale = float(np.sqrt(np.mean(seen ** 2))) if seen.size else 0.0
+    if not (np.isfinite(rms) and rms > MIN_RELATIVE_RMS * scale and rms > 0.0):
+        steps = ("monopole/dipole removal, " if prep.remove_dipole else "") + f"l {prep.lmin}..{prep.lmax}"
+        raise InputError(f"{src}: the prepared map is (near) constant: rms {rms:.3g} uK on the usable sky after "
+                         f"{steps} (input rms {scale:.3g} uK); allowed: a map that varies on the sky "
+                         f"(prepared rms above {MIN_RELATIVE_RMS:g} of the input's)")
+
+
 def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
 
@@ -209,6 +233,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
                  f"l < {prep.lmin} removed")
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
+    check_variance(src, sky, out_map, mask_out, prep)
     for n in notes:
         log.info(n)
     return Prepared(alm=alm, lmax=lmax, nside=int(prep.nside), map=np.asarray(out_map, dtype=np.float64),
