@@ -85,11 +85,26 @@ class Terminated(KeyboardInterrupt):
     """SIGTERM (what batch schedulers send before killing a job), raised like Ctrl-C in the main thread."""
 
 
+_SIGTERM_SEEN = []      # set by the handler: a worker killed by the same signal may raise first
+
+
 def _on_sigterm(signum, frame):
     import signal
 
     signal.signal(signal.SIGTERM, signal.SIG_IGN)     # once: the cleanup that follows must not be cut short
+    _SIGTERM_SEEN.append(time.time())
     raise Terminated()
+
+
+def _sigterm_pending(wait=0.5):
+    """Whether a SIGTERM arrives within ``wait`` seconds (it may trail a worker's death by a moment)."""
+    end = time.time() + wait
+    try:
+        while time.time() < end and not _SIGTERM_SEEN:
+            time.sleep(0.05)
+    except Terminated:
+        return True
+    return bool(_SIGTERM_SEEN)
 
 
 def _expand_paths(args):
@@ -133,6 +148,7 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     _expand_paths(args)
     start = time.time()
+    _SIGTERM_SEEN.clear()
     unset = object()
     previous = unset
     try:
@@ -147,6 +163,7 @@ def main(argv=None) -> int:
             print(f"twinring: error: {exc}", file=sys.stderr)
             return 2
         except Terminated:
+            _SIGTERM_SEEN.append(time.time())
             rundir.discard_pending()
             _stop_workers()
             print("twinring: terminated (SIGTERM); workers stopped, finished units are kept, rerun to resume",
@@ -159,6 +176,12 @@ def main(argv=None) -> int:
             return 130
         except BaseException:
             rundir.discard_pending()
+            if _SIGTERM_SEEN or (previous is not unset and _sigterm_pending()):
+                # the whole process group got SIGTERM: a worker died of it and joblib reported that first
+                _stop_workers()
+                print("twinring: terminated (SIGTERM); workers stopped, finished units are kept, rerun to resume",
+                      file=sys.stderr)
+                return 143
             raise
         if int(status or 0) == 0:
             rundir.commit_pending()

@@ -220,7 +220,12 @@ def _clean_temporaries(d: Path):
 
 # --------------------------------------------------------------------------- worker side
 def _load_shared(token, path):
-    """The shared context in a worker process: unpickled once per worker and run (by token)."""
+    """The shared context in a worker process: unpickled once per worker and run (by token).
+
+    The file is this run's own temporary file (``mkstemp``, mode 0600, written by
+    :func:`_processes` a moment before and removed after), never a file from a
+    run or shard directory.
+    """
     obj = _SHARED.get(token)
     if obj is None:
         _SHARED.clear()

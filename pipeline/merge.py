@@ -17,7 +17,10 @@ settings can be merged.  A plain run is shard 0/1.
 of shards of one work key (refusing different configs, missing, duplicate or
 unfinished shards), loads the plan's prepared map from the first shard, and
 runs the same combine + finalize as a single run, so the merged tables are
-identical to those of an unsplit run.
+identical to those of an unsplit run.  An ``--out`` that is one of the input
+shards is refused (it would rewrite that shard's manifest), and so is any
+damaged, foreign or tampered chunk file (:mod:`twinring.store`: nothing read
+executes code).
 """
 from __future__ import annotations
 

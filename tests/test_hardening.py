@@ -343,7 +343,10 @@ def _alive(pid):
     return state != "Z"
 
 
-def test_sigterm_stops_workers_keeps_units_and_exits_143(tmp_path):
+@pytest.mark.parametrize("to", ["main", "group"])
+def test_sigterm_stops_workers_keeps_units_and_exits_143(tmp_path, to):
+    # "main": the signal reaches the main process only; "group": every process of the job (what batch
+    # schedulers such as Slurm do, common practice, no source)
     m = periodic_field_on_sphere((1.2, 1.2, 1.2), 32, kmax=60, seed=23)
     hp.write_map(str(tmp_path / "torus.fits"), m, column_units="uK", dtype=np.float64)
     raw = {"map": {"path": str(tmp_path / "torus.fits")}, "prepare": {"nside": 32, "lmax": 64, "fwhm_deg": 5.0},
@@ -361,13 +364,16 @@ def test_sigterm_stops_workers_keeps_units_and_exits_143(tmp_path):
         deadline = time.time() + 180
         while time.time() < deadline and proc.poll() is None:
             workers.update(_children(proc.pid))
-            if (out / "chunks").is_dir() and len(list((out / "chunks").glob("u*.npz"))) >= 3:
+            if (out / "chunks").is_dir() and len(list((out / "chunks").glob("u*.npz"))) >= 2:
                 break
             time.sleep(0.02)
         assert proc.poll() is None, "the run ended before it could be stopped"
         workers.update(_children(proc.pid))
         assert workers, "no worker processes seen"
-        os.kill(proc.pid, signal.SIGTERM)            # the main process only, not its group
+        if to == "main":
+            os.kill(proc.pid, signal.SIGTERM)
+        else:
+            os.killpg(proc.pid, signal.SIGTERM)
         _, err = proc.communicate(timeout=60)
     finally:
         if proc.poll() is None:
@@ -377,7 +383,7 @@ def test_sigterm_stops_workers_keeps_units_and_exits_143(tmp_path):
     lines = err.strip().splitlines()
     assert len(lines) == 1 and "terminated" in lines[0] and "Traceback" not in err, err
     kept = list((out / "chunks").glob("u*.npz"))
-    assert len(kept) >= 3
+    assert len(kept) >= 2
     # no process left behind: every worker seen is gone, and so is the whole process group
     deadline = time.time() + 20
     while time.time() < deadline and any(_alive(p) for p in workers):
