@@ -555,19 +555,24 @@ def calibrate_shard(cfg, run, sky, prepared, shard):
 
 def merge_calibration_shards(dirs, out, force=False):
     """Collect the simulations of every calibration shard into ``out`` and calibrate there (no sim is rerun)."""
-    import json
-
     from . import execute
     from .config import load_config
-    from .merge import load_shard_units
     from .rundir import CONFIG_NAME, open_run
+    from .store import read_shard_json, refuse_out_among_inputs
 
+    dirs = [Path(d).expanduser() for d in dirs]
+    refuse_out_among_inputs(out, dirs, "calibration shard")
+    allowed = f"the {CAL_SHARD} written by `twinring calibrate --shard K/N`"
     mans = []
     for d in dirs:
         p = Path(d) / CAL_SHARD
         if not p.exists():
             raise InputError(f"{d}: no {CAL_SHARD}; allowed: output directories of `twinring calibrate --shard K/N`")
-        mans.append((Path(d), json.loads(p.read_text())))
+        m = read_shard_json(p, "calibration shard manifest", allowed, ("setup", "config_hash", "shard", "units"))
+        if not isinstance(m["setup"], str) or not all(isinstance(u, int) for u in m["units"]):
+            raise InputError(f"{p}: calibration shard manifest damaged (setup or units of the wrong type); "
+                             f"allowed: {allowed}")
+        mans.append((Path(d), m))
     d0, m0 = mans[0]
     seen = {}
     for d, m in mans:
@@ -586,8 +591,8 @@ def merge_calibration_shards(dirs, out, force=False):
     cfg = load_config(d0 / CONFIG_NAME)
     got = {}
     for d, m in mans:
-        got.update(load_shard_units(d, SIM_TAG, m["units"], m0["setup"],
-                                    f"calibration shard {m['shard'][0]}/{n_shards}", "simulation"))
+        got.update(execute.load_shard_units(d, SIM_TAG, m["units"], m0["setup"],
+                                            f"calibration shard {m['shard'][0]}/{n_shards}", "simulation"))
     run = open_run(cfg, out, force, "merge")
     for u, res in got.items():
         execute.store_unit(run.dir, SIM_TAG, u, res, m0["setup"])

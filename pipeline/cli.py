@@ -4,8 +4,11 @@ Each subcommand is one row of ``COMMANDS``: its name, one-line help, a function
 adding its arguments and the dotted path of its handler (imported only when the
 subcommand runs, so ``--help`` stays fast).  A handler takes the parsed
 arguments and returns an exit status.  Bad input of any kind is an
-:class:`~twinring.config.InputError`, printed as one line on stderr with exit
-status 2 and no traceback.
+:class:`~twinring.errors.InputError`, printed as one line on stderr with exit
+status 2 and no traceback.  Ctrl-C (exit status 130) and SIGTERM (exit status
+143, what batch schedulers send before killing a job) stop the worker
+processes, keep every finished unit for resume and print one line.  ``~`` in
+path arguments is expanded.
 """
 from __future__ import annotations
 
@@ -78,23 +81,115 @@ def _resolve(dotted):
     return getattr(importlib.import_module(mod), fn)
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (what batch schedulers send before killing a job), raised like Ctrl-C in the main thread."""
+
+
+_SIGTERM_SEEN = []      # set by the handler: a worker killed by the same signal may raise first
+
+
+def _on_sigterm(signum, frame):
+    import signal
+
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)     # once: the cleanup that follows must not be cut short
+    _SIGTERM_SEEN.append(time.time())
+    raise Terminated()
+
+
+def _sigterm_pending(wait=0.5):
+    """Whether a SIGTERM arrives within ``wait`` seconds (it may trail a worker's death by a moment)."""
+    end = time.time() + wait
+    try:
+        while time.time() < end and not _SIGTERM_SEEN:
+            time.sleep(0.05)
+    except Terminated:
+        return True
+    return bool(_SIGTERM_SEEN)
+
+
+def _expand_paths(args):
+    """``~`` in every path argument is the user's home (the shell leaves ``--out=~/x`` alone)."""
+    for name in ("config", "out", "dir"):
+        v = getattr(args, name, None)
+        if isinstance(v, str):
+            setattr(args, name, os.path.expanduser(v))
+    if isinstance(getattr(args, "dirs", None), list):
+        args.dirs = [os.path.expanduser(d) for d in args.dirs]
+
+
+def _stop_workers():
+    """Stop worker processes this process started (joblib/loky pool, multiprocessing children)."""
+    loky = sys.modules.get("joblib.externals.loky.reusable_executor")
+    ex = getattr(loky, "_executor", None) if loky is not None else None
+    if ex is not None:
+        try:
+            ex.shutdown(wait=True, kill_workers=True)
+        except Exception:   # noqa: BLE001  (best effort while exiting)
+            pass
+    if "multiprocessing" in sys.modules:
+        import multiprocessing
+
+        for child in multiprocessing.active_children():
+            child.terminate()
+        for child in multiprocessing.active_children():
+            child.join(timeout=5)
+
+
 def main(argv=None) -> int:
     # healpy's OpenMP transforms: one thread unless the user says otherwise, so that results do not
     # depend on the backend's process layout, and a loaded machine is not made to spin-wait
     os.environ.setdefault("OMP_NUM_THREADS", "1")
+    import signal
+
     from .config import InputError
+    from . import rundir
 
     parser = build_parser()
     args = parser.parse_args(argv)
+    _expand_paths(args)
     start = time.time()
+    _SIGTERM_SEEN.clear()
+    unset = object()
+    previous = unset
     try:
-        status = _resolve(args._handler)(args)
-    except InputError as exc:
-        print(f"twinring: error: {exc}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print("twinring: interrupted; finished chunks are kept, rerun to resume", file=sys.stderr)
-        return 130
+        previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    except ValueError:        # not the main thread: leave signals alone
+        pass
+    try:
+        try:
+            status = _resolve(args._handler)(args)
+        except InputError as exc:
+            rundir.discard_pending()
+            print(f"twinring: error: {exc}", file=sys.stderr)
+            return 2
+        except Terminated:
+            _SIGTERM_SEEN.append(time.time())
+            rundir.discard_pending()
+            _stop_workers()
+            print("twinring: terminated (SIGTERM); workers stopped, finished units are kept, rerun to resume",
+                  file=sys.stderr)
+            return 143
+        except KeyboardInterrupt:
+            rundir.discard_pending()
+            _stop_workers()
+            print("twinring: interrupted; finished units are kept, rerun to resume", file=sys.stderr)
+            return 130
+        except BaseException:
+            rundir.discard_pending()
+            if _SIGTERM_SEEN or (previous is not unset and _sigterm_pending()):
+                # the whole process group got SIGTERM: a worker died of it and joblib reported that first
+                _stop_workers()
+                print("twinring: terminated (SIGTERM); workers stopped, finished units are kept, rerun to resume",
+                      file=sys.stderr)
+                return 143
+            raise
+        if int(status or 0) == 0:
+            rundir.commit_pending()
+        else:
+            rundir.discard_pending()
+    finally:
+        if previous is not unset:
+            signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
     args._elapsed = time.time() - start
     return int(status or 0)
 

@@ -23,9 +23,7 @@ from typing import Any
 
 import yaml
 
-
-class InputError(Exception):
-    """Bad input (file or config).  The message is one complete line."""
+from .errors import InputError  # noqa: F401  (re-exported: ``from twinring.config import InputError``)
 
 
 def _f(default, kind, **rules):
@@ -477,9 +475,150 @@ def _curvature_matches_space(cfg: RunConfig):
 CROSS_CHECKS: list = [_curvature_matches_space]
 
 
+# --------------------------------------------------------------------------- YAML
+class DuplicateKeyError(yaml.YAMLError):
+    """A key given twice in one YAML mapping (the message names the key path and both lines)."""
+
+
+class UniqueKeyLoader(yaml.SafeLoader):
+    """PyYAML's SafeLoader (plain tags only) that refuses a key given twice in one mapping, at every level.
+
+    Plain YAML lets the last of two equal keys win silently; a second
+    ``search:`` section would replace the first.  Merge keys (``<<``) keep
+    their YAML meaning: keys given beside them override the merged ones.
+    """
+
+    def get_single_data(self):
+        node = self.get_single_node()
+        if node is None:
+            return None
+        self._check_unique(node, (), set())
+        return self.construct_document(node)
+
+    def _check_unique(self, node, path, seen):
+        if id(node) in seen:         # an alias of a node already checked
+            return
+        seen.add(id(node))
+        if isinstance(node, yaml.MappingNode):
+            first = {}
+            for key_node, value_node in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    self._check_unique(value_node, path, seen)
+                    continue
+                if isinstance(key_node, yaml.ScalarNode):
+                    key = self.construct_object(key_node)
+                    try:
+                        hash(key)
+                    except TypeError:
+                        key = ("scalar", key_node.tag, key_node.value)
+                    line = key_node.start_mark.line + 1
+                    if key in first:
+                        where = ".".join(str(p) for p in (*path, key))
+                        raise DuplicateKeyError(f"duplicate key '{where}' at lines {first[key]} and {line} "
+                                                "(YAML would silently keep the last)")
+                    first[key] = line
+                    self._check_unique(value_node, (*path, key), seen)
+                else:
+                    self._check_unique(value_node, (*path, "?"), seen)
+        elif isinstance(node, yaml.SequenceNode):
+            for i, item in enumerate(node.value):
+                self._check_unique(item, (*path, f"[{i}]"), seen)
+
+
+def safe_load_unique(text):
+    """``yaml.safe_load`` that refuses duplicate keys (:class:`UniqueKeyLoader`)."""
+    loader = UniqueKeyLoader(text)
+    try:
+        return loader.get_single_data()
+    finally:
+        loader.dispose()
+
+
+# --------------------------------------------------------------------------- size limits
+MAX_RADII = 100_000          # radii of one search (search.radius_deg)
+MAX_PAIRS = 1e15             # circle pairs of one search, all radii (both senses, all twists each)
+_PAIRS_PER_CHUNK = 2_000_000  # twinring.search.TARGET_PAIRS_PER_CHUNK (kept equal; not imported: search is heavy)
+
+
+def _gb(nbytes):
+    return f"{nbytes / 1e9:.3g} GB"
+
+
+def search_size(cfg: "RunConfig") -> dict:
+    """What the configured search needs, estimated from the config alone (before any work).
+
+    Returns ``centres`` (None for the listed family, whose table is read later),
+    ``radii``, ``samples`` (ring samples at the largest radius), ``pairs`` (per
+    radius), ``chunk_bytes`` (a lower estimate of one chunk's peak memory:
+    ring synthesis, spectra, pair kernel, a_lm; see ``merge.chunk_memory_gb``),
+    ``pool_bytes`` (the best pairs all chunks send back, held together) and
+    ``prepare_bytes`` (the prepared map, mask and a_lm).
+    """
+    s, prep = cfg.search, cfg.prepare
+    lo, hi, step = s.radius_deg
+    n_r = int(math.floor((hi - lo) / step + 1e-9)) + 1
+    lmax = int(prep.lmax)
+    alm_bytes = 16 * (lmax + 1) * (lmax + 2) // 2
+    npix = 12 * int(prep.nside) ** 2
+    ns = max(2 * (int(math.ceil(lmax * math.sin(math.radians(min(hi, 90.0))))) + s.sample_margin), 16)
+    out = dict(radii=n_r, samples=ns, centres=None, pairs=None, chunk_bytes=None, pool_bytes=None,
+               prepare_bytes=3 * 8 * npix + alm_bytes)
+    if s.family == "listed":
+        return out
+    n = 12 * int(s.nside_centers) ** 2
+    if s.family == "antipodal":
+        pairs = n // 2
+    else:
+        smin, smax = s.separation_deg
+        frac = max((math.cos(math.radians(smin)) - math.cos(math.radians(smax))) / 2, 0.0)
+        pairs = int(n * (n - 1) / 2 * frac)
+        if s.method == "fast":
+            pairs = min(pairs, n * s.screen_partners)
+    blocks = max(1, math.ceil(pairs / _PAIRS_PER_CHUNK))
+    chunk = 56 * n * ns + 16 * n * (ns // 2 + 1) + 64 * min(pairs, _PAIRS_PER_CHUNK) + alm_bytes
+    pool = n_r * blocks * 2 * min(s.keep_per_radius, max(pairs, 1)) * 33
+    out.update(centres=n, pairs=pairs, chunk_bytes=chunk, pool_bytes=pool)
+    return out
+
+
+def _check_sizes(cfg: "RunConfig"):
+    """Refuse, before any work, a search past ``compute.memory_gb`` or the sane limits (one line each)."""
+    src = cfg.source or "<config>"
+    mem = cfg.compute.memory_gb
+    budget = mem * 1e9
+    z = search_size(cfg)
+    s = cfg.search
+    if z["radii"] > MAX_RADII:
+        raise InputError(f"{src}: search.radius_deg: found {list(s.radius_deg)}, {z['radii']:.3g} radii; allowed: "
+                         f"at most {MAX_RADII} radii (a larger step)")
+    if z["prepare_bytes"] > budget:
+        raise InputError(f"{src}: prepare.nside: found {cfg.prepare.nside}; the prepared map would need about "
+                         f"{_gb(z['prepare_bytes'])}; allowed: at most compute.memory_gb = {mem:g} GB "
+                         "(a smaller prepare.nside, or more compute.memory_gb)")
+    if z["centres"] is None:
+        return
+    what = (f"{z['centres']:,} centres (search.nside_centers {s.nside_centers}) x {z['radii']} radii, "
+            f"{z['samples']} samples per ring at prepare.lmax {cfg.prepare.lmax}")
+    total = z["pairs"] * z["radii"]
+    if total > MAX_PAIRS:
+        raise InputError(f"{src}: search.nside_centers: {what} would scan {total:.3g} circle pairs; allowed: at "
+                         f"most {MAX_PAIRS:.0e} (a smaller search.nside_centers, fewer radii or method 'fast')")
+    if z["chunk_bytes"] > budget:
+        raise InputError(f"{src}: search.nside_centers: {what} would need about {_gb(z['chunk_bytes'])} per "
+                         f"chunk; allowed: at most compute.memory_gb = {mem:g} GB (a smaller search.nside_centers "
+                         "or prepare.lmax, or more compute.memory_gb)")
+    if z["pool_bytes"] > budget:
+        raise InputError(f"{src}: search.keep_per_radius: {what} would keep about {_gb(z['pool_bytes'])} of best "
+                         f"pairs; allowed: at most compute.memory_gb = {mem:g} GB (a smaller "
+                         "search.keep_per_radius or search.nside_centers, or more compute.memory_gb)")
+
+
+CROSS_CHECKS.append(_check_sizes)
+
+
 def load_config(path, overrides: dict | None = None) -> RunConfig:
-    """Read a YAML run config (safe loading only) and validate it."""
-    p = Path(path)
+    """Read a YAML run config (safe loading only, duplicate keys refused) and validate it."""
+    p = Path(path).expanduser()
     if not p.exists():
         raise InputError(f"{p}: config file not found")
     try:
@@ -487,7 +626,9 @@ def load_config(path, overrides: dict | None = None) -> RunConfig:
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(f"{p}: cannot read config ({exc.__class__.__name__}: {exc})")
     try:
-        raw = yaml.safe_load(text)
+        raw = safe_load_unique(text)
+    except DuplicateKeyError as exc:
+        raise InputError(f"{p}: {exc}; allowed: each key once per mapping")
     except yaml.YAMLError as exc:
         first = str(exc).splitlines()[0] if str(exc) else exc.__class__.__name__
         mark = getattr(exc, "problem_mark", None)

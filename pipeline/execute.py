@@ -15,17 +15,21 @@ Backends (``compute.backend``)
                    (workers started by hand or by dask-jobqueue, see scripts/).
 
 Store and resume
-    With ``store_dir``, every finished unit is pickled to
-    ``store_dir/<tag>/<name>.pkl`` (name from the unit id, see
-    :func:`unit_filename`) through :func:`twinring.results.atomic_path`: a
-    temporary file renamed into place, so a final name never holds a
-    half-written file.  The file records the unit id and the ``key`` of the
-    work (e.g. a hash of the search plan); a later call with the same key loads
-    finished units instead of recomputing them, so a run killed at any moment
-    resumes where it stopped.  A file with another key or id is recomputed and
-    overwritten.  Results are written by the calling process as they arrive,
-    so remote workers need no shared file system.  One store must not be
-    written by two runs at once.
+    With ``store_dir``, every finished unit is written to
+    ``store_dir/<tag>/<name>.npz`` (name from the unit id, see
+    :func:`unit_filename`; format in :mod:`twinring.store`: no pickle, read
+    with ``allow_pickle=False``, versioned and checksummed) through
+    :func:`twinring.results.atomic_path`: a temporary file renamed into place,
+    so a final name never holds a half-written file.  The file records the
+    unit id and the ``key`` of the work (e.g. a hash of the search plan); a
+    later call with the same key loads finished units instead of recomputing
+    them, so a run killed at any moment resumes where it stopped.  On resume a
+    file with another key or id, or a damaged, foreign or tampered one, is
+    logged (naming the file), recomputed and overwritten; merges
+    (``strict=True``) refuse it with a one-line :class:`InputError` instead.
+    Results are written by the calling process as they arrive, so remote
+    workers need no shared file system.  One store must not be written by two
+    runs at once.
 
 Shards
     ``shard=(K, N)``: only the units whose position in the sorted id list is
@@ -55,10 +59,10 @@ import uuid
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .config import InputError
-from .results import atomic_path
+from . import store as _store
+from .errors import InputError
 
-STORE_FORMAT = 1
+STORE_FORMAT = _store.VERSION
 _log = logging.getLogger("twinring.execute")
 
 _IN_WORKER = False          # set in worker processes by _task
@@ -82,19 +86,19 @@ _SAFE = re.compile(r"^[A-Za-z0-9_.+-]{1,80}$")
 
 
 def unit_filename(u) -> str:
-    """Stable file name of a unit id: ``u00000012.pkl``, ``u00003-00001.pkl``, ``u-name.pkl`` or a hash."""
+    """Stable file name of a unit id: ``u00000012.npz``, ``u00003-00001.npz``, ``u-name.npz`` or a hash."""
     import hashlib
 
     u = _norm(u)
     if isinstance(u, bool):
         pass
     elif isinstance(u, int) and u >= 0:
-        return f"u{u:08d}.pkl"
+        return f"u{u:08d}{_store.SUFFIX}"
     elif isinstance(u, tuple) and u and all(isinstance(x, int) and not isinstance(x, bool) and x >= 0 for x in u):
-        return "u" + "-".join(f"{x:05d}" for x in u) + ".pkl"
+        return "u" + "-".join(f"{x:05d}" for x in u) + _store.SUFFIX
     elif isinstance(u, str) and _SAFE.match(u) and not u.startswith("."):
-        return f"u-{u}.pkl"
-    return "u-h" + hashlib.sha256(repr(u).encode()).hexdigest()[:20] + ".pkl"
+        return f"u-{u}{_store.SUFFIX}"
+    return "u-h" + hashlib.sha256(repr(u).encode()).hexdigest()[:20] + _store.SUFFIX
 
 
 def parse_shard(text, what="--shard"):
@@ -140,50 +144,64 @@ def unit_path(store_dir, tag, u) -> Path:
 
 
 def store_unit(store_dir, tag, u, result, key=None) -> Path:
-    """Write one unit's result atomically (pickle with the unit id and work key)."""
-    path = unit_path(store_dir, tag, u)
-    blob = {"format": STORE_FORMAT, "unit": _norm(u), "key": key, "result": result}
-    with atomic_path(path) as tmp:
-        with open(tmp, "wb") as fh:
-            pickle.dump(blob, fh, protocol=pickle.HIGHEST_PROTOCOL)
-    return path
+    """Write one unit's result atomically (:func:`twinring.store.write_unit`, with the unit id and work key)."""
+    return _store.write_unit(unit_path(store_dir, tag, u), _norm(u), key, result)
 
 
 _MISSING = object()     # no default given: raise KeyError
 _ABSENT = object()      # returned by load_unit(..., default=_ABSENT)
 
 
-def load_unit(store_dir, tag, u, key=None, default=_MISSING):
-    """A stored result of unit ``u`` made under ``key``; ``default`` (or KeyError) when absent or stale."""
+def load_unit(store_dir, tag, u, key=None, default=_MISSING, strict=False, say=None):
+    """A stored result of unit ``u`` made under ``key``.
+
+    Absent: ``default`` (or KeyError).  Stale (other key or unit), damaged,
+    foreign or tampered: with ``strict`` a one-line :class:`~twinring.store.StoreError`
+    (an InputError naming the file); otherwise ``say(reason)`` and ``default``
+    (or KeyError), so that the unit is recomputed.  Nothing read executes code.
+    """
     path = unit_path(store_dir, tag, u)
-    why = "absent"
-    if path.exists():
+    if not path.exists():
+        why = f"{path}: absent"
+    else:
         try:
-            with open(path, "rb") as fh:
-                blob = pickle.load(fh)
-            if not isinstance(blob, dict) or blob.get("format") != STORE_FORMAT:
-                why = "of an unknown format"
-            elif blob.get("unit") != _norm(u):
-                why = f"for unit {blob.get('unit')!r}"
-            elif key is not None and blob.get("key") != key:
-                why = "made by other work (key differs)"
-            else:
-                return blob["result"]
-        except Exception as exc:  # unreadable: recompute
-            why = f"unreadable ({exc.__class__.__name__})"
+            return _store.read_unit(path, _norm(u), key)[2]
+        except _store.StoreError as exc:
+            if strict:
+                raise
+            why = str(exc).split("; allowed:")[0]
+            if say is not None:
+                say(f"{tag}: {why}; recomputing it")
     if default is _MISSING:
-        raise KeyError(f"{path}: {why}")
+        raise KeyError(why)
     return default
 
 
-def load_units(store_dir, tag, unit_ids, key=None):
-    """``{u: result}`` of the stored units among ``unit_ids`` made under ``key`` (others left out)."""
+def load_units(store_dir, tag, unit_ids, key=None, strict=False, say=None):
+    """``{u: result}`` of the stored units among ``unit_ids`` made under ``key``.
+
+    Absent units are left out; others that cannot be used are left out too
+    (``say`` told why), or with ``strict`` refused with a one-line InputError.
+    """
     out = {}
     for u in unit_ids:
-        r = load_unit(store_dir, tag, u, key, default=_ABSENT)
+        r = load_unit(store_dir, tag, u, key, default=_ABSENT, strict=strict, say=say)
         if r is not _ABSENT:
             out[_norm(u)] = r
     return out
+
+
+def load_shard_units(d, tag, units, key, shard_label, what):
+    """Every stored unit of one shard directory, or a one-line InputError naming the first file missing or bad.
+
+    Used by both merges (search chunks, calibration simulations); nothing read executes code.
+    """
+    got = load_units(d, tag, units, key, strict=True)
+    lost = [u for u in units if _norm(u) not in got]
+    if lost:
+        raise InputError(f"{unit_path(d, tag, lost[0])}: {len(lost)} {what} file(s) of {shard_label} in {d} "
+                         f"missing (this one first); allowed: rerun that shard")
+    return got
 
 
 def _clean_temporaries(d: Path):
@@ -202,7 +220,12 @@ def _clean_temporaries(d: Path):
 
 # --------------------------------------------------------------------------- worker side
 def _load_shared(token, path):
-    """The shared context in a worker process: unpickled once per worker and run (by token)."""
+    """The shared context in a worker process: unpickled once per worker and run (by token).
+
+    The file is this run's own temporary file (``mkstemp``, mode 0600, written by
+    :func:`_processes` a moment before and removed after), never a file from a
+    run or shard directory.
+    """
     obj = _SHARED.get(token)
     if obj is None:
         _SHARED.clear()
@@ -308,7 +331,7 @@ def run_units(fn, common, unit_ids, *, compute=None, store_dir=None, tag="units"
         _clean_temporaries(d)
         todo = []
         for u in ids:
-            r = load_unit(store_dir, tag, u, key, default=_ABSENT)
+            r = load_unit(store_dir, tag, u, key, default=_ABSENT, say=say)
             if r is _ABSENT:
                 todo.append(u)
             else:

@@ -17,7 +17,10 @@ settings can be merged.  A plain run is shard 0/1.
 of shards of one work key (refusing different configs, missing, duplicate or
 unfinished shards), loads the plan's prepared map from the first shard, and
 runs the same combine + finalize as a single run, so the merged tables are
-identical to those of an unsplit run.
+identical to those of an unsplit run.  An ``--out`` that is one of the input
+shards is refused (it would rewrite that shard's manifest), and so is any
+damaged, foreign or tampered chunk file (:mod:`twinring.store`: nothing read
+executes code).
 """
 from __future__ import annotations
 
@@ -29,6 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from . import execute
+from .store import read_shard_json, refuse_out_among_inputs  # noqa: F401
 from .config import InputError, load_config
 
 MANIFEST = "shard.json"
@@ -125,16 +129,11 @@ def read_manifest(run_dir) -> dict:
         raise InputError(f"{d}: shard directory not found; allowed: output directories of `twinring search --shard`")
     if not p.exists():
         raise InputError(f"{p}: no shard manifest; allowed: output directories of `twinring search --shard K/N`")
-    try:
-        data = json.loads(p.read_text())
-        k, n = data["shard"]
-        data["shard"] = (int(k), int(n))
-        data["units"] = [tuple(u) if isinstance(u, list) else u for u in data["units"]]
-        data["done"] = [tuple(u) if isinstance(u, list) else u for u in data["done"]]
-        str(data["work_key"])
-    except (ValueError, KeyError, TypeError) as exc:
-        raise InputError(f"{p}: unreadable shard manifest ({exc.__class__.__name__}); "
-                         "allowed: the shard.json written by `twinring search`")
+    allowed = "the shard.json written by `twinring search`"
+    data = read_shard_json(p, "shard manifest", allowed, ("work_key", "shard", "units", "done", "units_total"),
+                           ("units", "done"))
+    if not isinstance(data["work_key"], str) or not isinstance(data["units_total"], int):
+        raise InputError(f"{p}: shard manifest damaged (work_key or units_total of the wrong type); allowed: {allowed}")
     return data
 
 
@@ -230,14 +229,7 @@ def load_prepared_for_merge(cfg, dirs):
     return prep_mod.load_and_prepare(cfg), None
 
 
-def load_shard_units(d, tag, units, key, shard_label, what):
-    """Every stored unit of one shard directory, or a one-line error naming the first one lost."""
-    got = execute.load_units(d, tag, units, key)
-    lost = [u for u in units if u not in got]
-    if lost:
-        raise InputError(f"{d}: {len(lost)} {what} file(s) of {shard_label} missing or damaged "
-                         f"(first {execute.unit_path(d, tag, lost[0]).name}); allowed: rerun that shard")
-    return got
+load_shard_units = execute.load_shard_units    # (one helper for both merges, in twinring.execute)
 
 
 def merge_shards(dirs, out, force=False, progress=True):
@@ -248,6 +240,8 @@ def merge_shards(dirs, out, force=False, progress=True):
     from .rundir import CONFIG_NAME, open_run
     from . import stages
 
+    dirs = [Path(d).expanduser() for d in dirs]
+    refuse_out_among_inputs(out, dirs)
     mans = check_shards(dirs)
     first = mans[0][0]
     cfg = load_config(first / CONFIG_NAME)

@@ -165,6 +165,43 @@ def map_to_alm(values, lmax, iterations=3):
     return np.asarray(alm, dtype=np.complex128), use_w
 
 
+MIN_RELATIVE_RMS = 1e-6    # prepared rms / input rms below this: nothing left to search (a constant map)
+
+
+def _input_scale(src, sky: SkyMap) -> float:
+    """The input's rms about zero on its unmasked pixels (uK); InputError when the map is (near) constant there."""
+    seen = np.asarray(sky.values, float)[np.asarray(sky.mask) > 0]
+    scale = float(np.sqrt(np.mean(seen ** 2))) if seen.size else 0.0
+    spread = float(np.std(seen)) if seen.size else 0.0
+    if not (spread > MIN_RELATIVE_RMS * scale and spread > 0.0):
+        raise InputError(f"{src}: the map is (near) constant on its usable pixels: rms {spread:.3g} uK about "
+                         f"its mean {float(np.mean(seen)) if seen.size else 0.0:.4g} uK; allowed: a map that "
+                         f"varies on the sky (rms above {MIN_RELATIVE_RMS:g} of its rms about zero)")
+    return scale
+
+
+def check_variance(src, scale, out_map, mask_out, prep: PrepareSection):
+    """Refuse a map with (near) zero variance on its usable pixels, before or after preparation (one line).
+
+    A map constant on its unmasked pixels is refused as it is, before any
+    work (:func:`_input_scale`; masking it would only make the mask's edge
+    into structure).  A map with nothing at ``prepare.lmin..lmax`` (e.g. a
+    pure monopole and dipole) has only rounding noise left after preparation
+    (about 1e-16 of the input, or 1e-8 from pixelisation with nothing
+    removed), which the S statistic would happily "match" (s near 1).  The
+    floor is :data:`MIN_RELATIVE_RMS` of the input's rms about zero
+    (``scale``, uK) on its unmasked pixels.
+    """
+    use = np.asarray(mask_out) > 0.5
+    vals = np.asarray(out_map, float)[use]
+    rms = float(np.std(vals)) if vals.size else 0.0
+    if not (np.isfinite(rms) and rms > MIN_RELATIVE_RMS * scale and rms > 0.0):
+        steps = ("monopole/dipole removal, " if prep.remove_dipole else "") + f"l {prep.lmin}..{prep.lmax}"
+        raise InputError(f"{src}: the prepared map is (near) constant: rms {rms:.3g} uK on the usable sky after "
+                         f"{steps} (input rms {scale:.3g} uK); allowed: a map that varies on the sky at "
+                         f"prepare.lmin..lmax (prepared rms above {MIN_RELATIVE_RMS:g} of the input's)")
+
+
 def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
 
@@ -179,6 +216,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
                          f"prepare.lmax = {lmax}; allowed: prepare.lmax <= 3*Nside_map-1 or a finer map")
     if not np.any(sky.mask > 0):
         raise InputError(f"{src}: no unmasked pixel; allowed: a map with some valid pixels")
+    scale = _input_scale(src, sky)
     notes = []
 
     # mask at the output resolution first (its temporaries are freed before map2alm)
@@ -209,6 +247,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
                  f"l < {prep.lmin} removed")
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
+    check_variance(src, scale, out_map, mask_out, prep)
     for n in notes:
         log.info(n)
     return Prepared(alm=alm, lmax=lmax, nside=int(prep.nside), map=np.asarray(out_map, dtype=np.float64),

@@ -3,12 +3,17 @@
 A run directory belongs to one config.  ``open_run`` writes the resolved
 config as ``config.yaml`` on first use and refuses a directory whose
 ``config.yaml`` came from a different config (hash of every section) unless
-``force`` is given.  Nothing already in the directory is removed.
+``force`` is given.  Nothing already in the directory is removed.  With
+``force``, the new ``config.yaml`` replaces the old one only when the stage
+succeeds (:meth:`Run.finish`, or :func:`commit_pending` called by the CLI
+after a handler returns): a forced run that fails leaves the old config beside
+the old tables.  ``~`` in the output directory is the user's home.
 """
 from __future__ import annotations
 
 import json
 import logging
+import os
 import resource
 import sys
 import time
@@ -38,6 +43,14 @@ class Run:
     stage: str
     logger: logging.Logger
     started: float = field(default_factory=time.time)
+    pending_config: str | None = None     # a forced run's config.yaml text, written when the stage succeeds
+
+    def commit(self):
+        """Write the config.yaml held back by a forced run (the stage succeeded)."""
+        if self.pending_config is not None:
+            write_text(self.dir / CONFIG_NAME, self.pending_config)
+            self.pending_config = None
+        _PENDING[:] = [r for r in _PENDING if r is not self]
 
     def log(self, msg, *args):
         self.logger.info(msg, *args)
@@ -55,6 +68,7 @@ class Run:
 
     def finish(self, lines: list[str], extra: dict | None = None):
         """Print the closing summary and log it."""
+        self.commit()
         lines = list(lines) + [f"wall time {self.elapsed():.1f} s, peak memory {peak_memory_mb():.0f} MB",
                                f"results in {self.dir}"]
         for line in lines:
@@ -75,8 +89,25 @@ def _logger(run_dir: Path, stage: str):
     return logger
 
 
+_PENDING: list = []      # forced runs of this process whose config.yaml waits for the stage to succeed
+
+
+def commit_pending():
+    """Write every held-back config.yaml (called by the CLI when a handler succeeded)."""
+    for run in list(_PENDING):
+        run.commit()
+
+
+def discard_pending():
+    """Forget held-back config.yaml texts (the stage failed: the old config stays)."""
+    for run in list(_PENDING):
+        run.pending_config = None
+    _PENDING.clear()
+
+
 def resolve_out(cfg: RunConfig, out_override=None) -> Path:
-    return Path(out_override or cfg.output.dir)
+    """The output directory: ``--out`` or ``output.dir``, with ``~`` expanded."""
+    return Path(os.path.expanduser(str(out_override or cfg.output.dir)))
 
 
 def open_run(cfg: RunConfig, out_override=None, force=False, stage="") -> Run:
@@ -102,9 +133,16 @@ def open_run(cfg: RunConfig, out_override=None, force=False, stage="") -> Run:
                 f"{out}: output directory holds results of another config (hash {old_hash}, this one {cfg.hash()});"
                 " allowed: a new --out directory, or --force"
             )
-    if not stored.exists() or force:
+    pending = None
+    if not stored.exists():
         write_text(stored, text)
-    return Run(out, cfg, stage, _logger(out, stage))
+    elif force and _stored_hash(stored) != cfg.hash():
+        pending = text            # written by Run.commit once the stage succeeds
+    run = Run(out, cfg, stage, _logger(out, stage), pending_config=pending)
+    if pending is not None:
+        _PENDING[:] = [r for r in _PENDING if r.dir.resolve() != out.resolve()]
+        _PENDING.append(run)
+    return run
 
 
 def _stored_hash(path: Path) -> str:
@@ -119,4 +157,7 @@ def write_json(path, data: dict):
 
 
 def read_yaml(path):
-    return yaml.safe_load(Path(path).read_text())
+    """A YAML file, safe-loaded with duplicate keys refused (:func:`twinring.config.safe_load_unique`)."""
+    from .config import safe_load_unique
+
+    return safe_load_unique(Path(path).read_text())

@@ -291,6 +291,62 @@ def test_yaml_object_tags_refused(good, capsys, tag):
     assert not flag.exists()
 
 
+@pytest.mark.parametrize("text,key,lines", [
+    # a second section of the same name (plain YAML keeps the last one silently)
+    ("search:\n  top: 2\nprepare:\n  nside: 16\nsearch:\n  top: 3\n", "'search'", (1, 5)),
+    # a key repeated inside one section
+    ("search:\n  top: 2\n  family: antipodal\n  top: 3\n", "'search.top'", (2, 4)),
+    # deeper: a repeated key in a flow mapping inside a section
+    ("compute: {progress: false, workers: 1, progress: true}\n", "'compute.progress'", (1, 1)),
+])
+def test_duplicate_yaml_keys_refused(good, capsys, text, key, lines):
+    # issue 15: the YAML 1.2 spec requires mapping keys to be unique (yaml.org/spec/1.2.2, 3.2.1.1)
+    p = good["dir"] / "dup.yaml"
+    p.write_text(f"map:\n  path: {good['base']['map']['path']}\n" + text)
+    err = run_bad(good, capsys, p, str(p), f"duplicate key {key}",
+                  f"lines {lines[0] + 2} and {lines[1] + 2}", "each key once")
+
+
+def test_merge_keys_are_not_duplicates(good, tmp_path):
+    # YAML merge keys (<<) let keys beside them override the merged ones (yaml.org/type/merge.html)
+    from twinring.config import load_config
+
+    p = tmp_path / "merge.yaml"
+    p.write_text("base: &b\n  top: 2\n  family: antipodal\n".replace("base", "search")
+                 + "prepare:\n  nside: 16\n  lmax: 32\n")
+    cfg = load_config(p)
+    assert cfg.search.top == 2
+    p.write_text("compute: &c {progress: false, workers: 2}\nsearch: {top: 2}\nprepare: {nside: 16, lmax: 32}\n")
+    assert load_config(p).compute.workers == 2
+
+
+@pytest.mark.parametrize("value", [0.0, 100.0, -2.7e6])
+def test_constant_map_refused(good, capsys, value):
+    # issue 15: a constant map has no power at l >= 2 (a pure monopole, common practice, no source);
+    # what is left after preparation is rounding noise that the S statistic would call a match
+    p = good["dir"] / f"const{value}.fits"
+    hp.write_map(str(p), np.full(hp.nside2npix(16), value), overwrite=True, coord="G", column_units="uK",
+                 dtype=np.float64)
+    run_bad(good, capsys, config_with(good, "c.yaml", map={"path": str(p)}), str(p), "(near) constant", "rms")
+
+
+def test_pure_dipole_map_refused(good, capsys):
+    # a monopole and dipole only: nothing at l >= 2 is left after preparation (Y_1m, common practice, no source)
+    p = good["dir"] / "dipole.fits"
+    x, y, z = hp.pix2vec(16, np.arange(hp.nside2npix(16)))
+    hp.write_map(str(p), 3000.0 * z + 20.0 * x + 100.0, overwrite=True, coord="G", column_units="uK",
+                 dtype=np.float64)
+    run_bad(good, capsys, config_with(good, "c.yaml", map={"path": str(p)}), str(p), "prepared map is (near) constant")
+
+
+def test_constant_map_without_monopole_removal_refused(good, capsys):
+    p = good["dir"] / "const_keep.fits"
+    hp.write_map(str(p), np.full(hp.nside2npix(16), 50.0), overwrite=True, coord="G", column_units="uK",
+                 dtype=np.float64)
+    cfg = config_with(good, "c.yaml", map={"path": str(p)}, prepare={"remove_dipole": False, "lmin": 0})
+    run_bad(good, capsys, cfg, str(p), "(near) constant")
+
+
 # --------------------------------------------------------------------------- real processes
 @pytest.mark.parametrize("how", ["module", "console"])
 def test_subprocess_exit_status_and_single_line(good, how):

@@ -477,7 +477,7 @@ def has_fixed_point(g: Isometry, tol=1e-9) -> bool:
 
 def space_from_config(topology, cosmology=None, source="<config>") -> Space:
     """Build the configured space; lengths in Gpc are converted with the configured cosmology."""
-    from ..config import InputError
+    from ..errors import InputError
 
     scale = 1.0
     if topology.units == "Gpc":
