@@ -286,3 +286,24 @@ def test_masked_torus_face_pairs_outrank_chance_circles():
     assert np.allclose(ranked["p_global"][:2], 1 / 41) and np.all(ranked["p_global"][2:] > 1 / 41)
     assert np.all(ranked["p_global"] >= ranked["p_local"])
     assert list(ranked["rank"]) == list(range(1, len(ranked) + 1))
+
+
+@pytest.mark.slow
+def test_null_p_global_is_uniform_on_120_fresh_skies():
+    # the full-size version of test_null_p_global_of_the_best_is_uniform: 40 calibration simulations, 120 fresh
+    # isotropic skies (other seeds); Kolmogorov-Smirnov against U(0, 1) (scipy.stats.kstest) and the fraction
+    # below 0.1 inside its binomial 99 % interval; nothing below 1/(N+1) (Davison & Hinkley 1997, ch. 4)
+    cfg = small_cfg()
+    ell = np.arange(LMAX + 1)
+    cl = np.where(ell >= 2, 3000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
+    ctx = cal.SimContext(cl=cl, nside=NSIDE, mask=None, noise_sigma=cal.noise_sigma_pixel(500.0, NSIDE),
+                         prep=cfg.prepare, search=cfg.search, seed=77, key="null-120")
+    peaks = cal.run_simulations(ctx, 160)
+    radii = np.asarray(cfg.search.radii_deg())
+    model = cal.NullModel(radii, peaks[:40])
+    cells = [(ir, f) for ir in range(radii.size) for f in (0, 1)]
+    best = np.array([min(model.p_global(ir, f, sky[ir, f]) for ir, f in cells) for sky in peaks[40:]])
+    assert scipy.stats.kstest(best, "uniform").pvalue > 0.01
+    lo, hi = scipy.stats.binom.interval(0.99, best.size, 0.1)
+    assert lo <= np.sum(best <= 0.1) <= hi
+    assert best.min() >= 1 / 41 - 1e-12
