@@ -177,7 +177,9 @@ class SkySection:
     mask_band_deg: float = _f(12.0, "float", min=0.0, max=60.0)
     mask_holes: int = _f(30, "int", min=0, max=100000)
     mask_hole_deg: float = _f(1.5, "float", min=0.0, max=20.0, open_min=True)
-    kmax_factor: float = _f(2.0, "float", min=1.0, max=10.0)
+    # null (default): automatic mode cut, converged to 15 % per multipole and the rest put back
+    # (topology/skies.py mode_cut); a number: modes to |k| chi = kmax_factor * lmax (still corrected)
+    kmax_factor: float | None = _f(None, "float?", min=1.0, max=10.0)
     open_length_chi: float = _f(4.0, "float", min=2.0, max=100.0, open_min=True)
 
     def check(self, where):

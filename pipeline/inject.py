@@ -477,7 +477,7 @@ def check_campaign(cfg, ctx: InjectContext):
 
     for size in (min(ctx.sizes), max(ctx.sizes)):
         try:
-            check_sky(ctx.shape.at(size), ctx.recipe, memory_gb=cfg.compute.memory_gb)
+            check_sky(ctx.shape.at(size), ctx.recipe, memory_gb=cfg.compute.memory_gb, cosmo=ctx.cosmo)
         except SkyParamError as exc:
             raise InputError(f"{cfg.source}: sky.{exc.key} (campaign size {size:.3g} chi): found {exc.found!r}; "
                              f"allowed: {exc.allowed}")

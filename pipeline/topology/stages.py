@@ -19,7 +19,7 @@ from ..config import InputError
 from ..results import provenance, write_table
 from .circles import predict_circles
 from .manifolds import space_from_config
-from .skies import SkyParamError, SkyRecipe, check_sky, make_sky, mask_for_seed
+from .skies import SkyParamError, SkyRecipe, check_sky, make_sky, mask_for_seed, mode_cut
 
 
 def _fmt(v):
@@ -53,7 +53,7 @@ def checked_sky_inputs(cfg):
     space = space_from_config(cfg.topology, cfg.cosmology, cfg.source)
     recipe = recipe_from_config(cfg)
     try:
-        check_sky(space, recipe, memory_gb=cfg.compute.memory_gb)
+        check_sky(space, recipe, memory_gb=cfg.compute.memory_gb, cosmo=cfg.cosmology)
     except SkyParamError as exc:
         section = "topology" if exc.key == "angles_deg" else "sky"
         found = exc.found if exc.found is not None else getattr(cfg.sky, exc.key, None)
@@ -102,6 +102,7 @@ def run_sky(cfg, out_dir) -> dict:
                  kmax_factor=recipe.kmax_factor, open_length=recipe.open_length, cosmo=cfg.cosmology,
                  nthreads=cfg.compute.threads)
     elapsed = time.perf_counter() - t_start
+    cut = mode_cut(recipe, cfg.cosmology)
     t = cfg.topology
     header = [
         ("SPACE", space.name, "flat space (Riazuelo et al. 2004 numbering)"),
@@ -116,7 +117,9 @@ def run_sky(cfg, out_dir) -> dict:
         ("LMIN", recipe.lmin, "multipoles below are zero"),
         ("FWHM_DEG", recipe.fwhm_deg, "Gaussian beam FWHM, deg"),
         ("NOISE", recipe.noise_uk_arcmin, "white noise, uK-arcmin"),
-        ("KMAXFAC", recipe.kmax_factor, "modes kept to |k| chi = KMAXFAC * LMAX"),
+        ("KMAXFAC", round(cut.factor, 4), "modes kept to |k| chi = KMAXFAC * LMAX"),
+        ("KMAXAUTO", cut.automatic, "KMAXFAC chosen by convergence of the C_l integral"),
+        ("TAILMAX", round(cut.worst_omitted, 4), "largest C_l fraction beyond the cut, put back"),
         ("OPENLEN", recipe.open_length, "stand-in period of open directions, chi"),
         ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
         ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
