@@ -360,7 +360,8 @@ def test_run_sky_acceptance_e1_e6(tmp_path, name, lengths, obs):
 
 @pytest.mark.parametrize("topology, sky, more, key", [
     ({"space": "E1", "lengths": [1.2, 1.2, 1.2]}, {"nside": 32, "lmax": 100}, {}, "sky.lmax"),
-    ({"space": "E1", "lengths": [3.0, 3.0, 3.0]}, {"kmax_factor": 3.0}, {"compute": {"memory_gb": 0.05}},
+    ({"space": "E1", "lengths": [3.0, 3.0, 3.0]}, {"kmax_factor": 3.0},
+     {"compute": {"memory_gb": 0.05}, "search": {"nside_centers": 2, "radius_deg": [20, 80, 20]}},
      "sky.kmax_factor"),
     ({"space": "E16", "lengths": [1.0], "angles_deg": [72.0]}, {}, {}, "topology.angles_deg"),
     ({"space": "E13", "lengths": [0.8, 1.5], "observer": [0.0, 0.9, 0.0]}, {"open_length_chi": 2.1}, {},
