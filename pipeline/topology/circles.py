@@ -27,12 +27,12 @@ def _order_key(v, nd=9):
     return (v[2], v[1], v[0])
 
 
-def twist_and_flip(g, x0, c1, c2, alpha, nfit=N_FIT):
-    """(twist_deg, flip) of the pair made by g: circle 1 about c1, circle 2 about c2."""
-    phi = 2 * np.pi * np.arange(nfit) / nfit
-    p = rings.ring_points(c1, alpha, nfit, other=c2)[0]
-    y = g.inverse()(x0 + p) - x0
-    psi = rings.phase_of(y, np.broadcast_to(c2, y.shape), other=np.broadcast_to(c1, y.shape))
+def phase_map_fit(phi, psi):
+    """(twist_deg, flip) of a map of phase phi on circle 1 to phase psi on circle 2.
+
+    The map must be psi = twist + phi (flip false) or psi = twist - phi (flip true); anything
+    else is an error (the conventions of twinring.rings, used by flat and spherical predictions).
+    """
     best = None
     for flip, u in ((False, psi - phi), (True, psi + phi)):
         z = np.exp(1j * u)
@@ -46,6 +46,15 @@ def twist_and_flip(g, x0, c1, c2, alpha, nfit=N_FIT):
     if twist > 360.0 - 1e-9:
         twist = 0.0
     return twist, flip
+
+
+def twist_and_flip(g, x0, c1, c2, alpha, nfit=N_FIT):
+    """(twist_deg, flip) of the pair made by g: circle 1 about c1, circle 2 about c2."""
+    phi = 2 * np.pi * np.arange(nfit) / nfit
+    p = rings.ring_points(c1, alpha, nfit, other=c2)[0]
+    y = g.inverse()(x0 + p) - x0
+    psi = rings.phase_of(y, np.broadcast_to(c2, y.shape), other=np.broadcast_to(c1, y.shape))
+    return phase_map_fit(phi, psi)
 
 
 def predict_pairs(space: Space, max_distance=2.0):

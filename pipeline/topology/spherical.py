@@ -398,19 +398,9 @@ def twist_and_flip(space: SphericalSpace, g: S3Isometry, c1, c2, alpha, nfit=48)
             np.radians(rings.separation_deg(n2, np.broadcast_to(c2, n2.shape))) - alpha)) > 1e-7:
         raise RuntimeError("mapped circle points leave the partner circle")
     psi = rings.phase_of(n2, np.broadcast_to(c2, n2.shape), other=np.broadcast_to(c1, n2.shape))
-    best = None
-    for flip, u in ((False, psi - phi), (True, psi + phi)):
-        z = np.exp(1j * u)
-        mean = z.mean()
-        spread = float(np.max(np.abs(z - mean / abs(mean)))) if abs(mean) > 0 else 2.0
-        if best is None or spread < best[2]:
-            best = (float(np.degrees(np.angle(mean)) % 360.0), flip, spread)
-    twist, flip, spread = best
-    if spread > 1e-6:
-        raise RuntimeError(f"circle map is not a rotation or reflection of phase (spread {spread:.2e})")
-    if twist > 360.0 - 1e-9:
-        twist = 0.0
-    return twist, flip
+    from .circles import phase_map_fit
+
+    return phase_map_fit(phi, psi)
 
 
 def images_within(space: SphericalSpace, max_distance):
