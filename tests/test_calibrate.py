@@ -150,16 +150,20 @@ def test_genextreme_fit_recovers_a_gumbel_like_law():
 
 
 # --------------------------------------------------------------------------- the null model
-@pytest.fixture(scope="module")
-def null_split():
-    """Isotropic skies with a fixed spectrum: 40 for calibration, 40 held out."""
+def isotropic_peaks(n, seed):
+    """Grid peaks of n isotropic skies with a fixed spectrum (500 uK-arcmin noise) and the radii."""
     cfg = small_cfg()
     ell = np.arange(LMAX + 1)
     cl = np.where(ell >= 2, 3000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
     ctx = cal.SimContext(cl=cl, nside=NSIDE, mask=None, noise_sigma=cal.noise_sigma_pixel(500.0, NSIDE),
-                         prep=cfg.prepare, search=cfg.search, seed=21, key="null-split")
-    peaks = cal.run_simulations(ctx, 80)
-    radii = np.asarray(cfg.search.radii_deg())
+                         prep=cfg.prepare, search=cfg.search, seed=seed, key=f"isotropic-{seed}")
+    return np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, n)
+
+
+@pytest.fixture(scope="module")
+def null_split():
+    """Isotropic skies with a fixed spectrum: 40 for calibration, 40 held out."""
+    radii, peaks = isotropic_peaks(80, 21)
     return radii, peaks[:40], peaks[40:]
 
 
@@ -293,13 +297,7 @@ def test_null_p_global_is_uniform_on_120_fresh_skies():
     # the full-size version of test_null_p_global_of_the_best_is_uniform: 40 calibration simulations, 120 fresh
     # isotropic skies (other seeds); Kolmogorov-Smirnov against U(0, 1) (scipy.stats.kstest) and the fraction
     # below 0.1 inside its binomial 99 % interval; nothing below 1/(N+1) (Davison & Hinkley 1997, ch. 4)
-    cfg = small_cfg()
-    ell = np.arange(LMAX + 1)
-    cl = np.where(ell >= 2, 3000.0 / np.maximum(ell * (ell + 1), 1), 0.0)
-    ctx = cal.SimContext(cl=cl, nside=NSIDE, mask=None, noise_sigma=cal.noise_sigma_pixel(500.0, NSIDE),
-                         prep=cfg.prepare, search=cfg.search, seed=77, key="null-120")
-    peaks = cal.run_simulations(ctx, 160)
-    radii = np.asarray(cfg.search.radii_deg())
+    radii, peaks = isotropic_peaks(160, 77)
     model = cal.NullModel(radii, peaks[:40])
     cells = [(ir, f) for ir in range(radii.size) for f in (0, 1)]
     best = np.array([min(model.p_global(ir, f, sky[ir, f]) for ir, f in cells) for sky in peaks[40:]])
