@@ -330,7 +330,7 @@ def fig_recovery(rec, bound_row, path, level=0.95, dpi=110):
     sec = ax.secondary_xaxis("top", functions=(
         lambda a: 2.0 * np.cos(np.radians(np.clip(a, 0.0, 90.0))) / d1,
         lambda L: np.degrees(np.arccos(np.clip(np.asarray(L) * d1 / 2.0, 0.0, 1.0)))))
-    sec.set_xlabel("size of space L [χ]  (cos α = L d₁ / 2χ)", fontsize=9)
+    sec.set_xlabel("size of space L [χ]", fontsize=9)
     sec.tick_params(labelsize=8)
     ax.legend(fontsize=8, loc="lower right")
     title = "Injection–recovery"
@@ -727,7 +727,6 @@ def make_report(run_dir, cfg=None, log=None):
     dpi = cfg.report.dpi if cfg is not None else 110
     n_circles = cfg.report.circles if cfg is not None else 3
     level = cfg.bound.recovery if cfg is not None else 0.95
-    say = log or (lambda msg: None)
     figures = []
     peaks, cand = _read(d, "peaks.ecsv"), _read(d, "candidates.ecsv")
     thr, rec, bnd = _read(d, "thresholds.ecsv"), _read(d, "recovery.ecsv"), _read(d, "bound.ecsv")
@@ -753,8 +752,6 @@ def make_report(run_dir, cfg=None, log=None):
             path, _ = fig_candidate(prepared, row, d / CANDIDATE_FIGURE.format(rank), weighting, dpi, status,
                                     p_text(row, "p_global", floor, n))
             figures.append(path)
-    for f in figures:
-        say(f"figure {f}")
     s = summarize(d, cfg, figures)
     write_text(d / "summary.json", json.dumps(s, indent=2, default=str, ensure_ascii=False) + "\n")
     write_text(d / "summary.md", summary_markdown(s))
