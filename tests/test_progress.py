@@ -20,7 +20,7 @@ def _square(common, u):
 
 
 def _run(tmp_path, progress=True):
-    cfg = config_from_dict({"output": {"dir": str(tmp_path / "run")}, "compute": {"progress": progress}})
+    cfg = config_from_dict({"output": {"dir": str(tmp_path / f"run{progress}")}, "compute": {"progress": progress}})
     return open_run(cfg, stage="search")
 
 
@@ -44,6 +44,6 @@ def test_each_log_line_once(tmp_path, capsys):
     run.finish([res.stats.line(), "5 squares"])
     out = capsys.readouterr().out
     assert res.stats.line() in out                         # the console still shows the summary
-    lines = [l.split(" ", 2)[2] for l in (tmp_path / "run" / LOG_NAME).read_text().splitlines()]
+    lines = [l.split(" ", 2)[2] for l in (tmp_path / "runTrue" / LOG_NAME).read_text().splitlines()]
     assert len(lines) == len(set(lines)) and lines.count(f"search: {res.stats.line()}") == 1
     assert "search: 5 squares" in lines
