@@ -121,16 +121,16 @@ def is_significant(table):
 def shown_candidates(cand, n_top):
     """Row indices of candidates to draw and their status: the significant ones, else the top ``n_top``.
 
-    Status: ``"significant"``, ``"not significant"`` (calibrated, none significant) or
-    ``"not calibrated"``.  Row order is the ranking.
+    Status: ``"significant"``, ``"not significant"`` (calibrated, none significant),
+    ``"significance not recorded"`` (p-values without a ``significant`` column) or ``"not calibrated"``.  Row order is the ranking.
     """
     if cand is None or len(cand) == 0:
         return [], ""
     sig = is_significant(cand)
     if sig.any():
         return [int(i) for i in np.flatnonzero(sig)[:MAX_CANDIDATE_FIGURES]], "significant"
-    status = "not significant" if ("p_global" in cand.colnames or "significant" in cand.colnames) \
-        else "not calibrated"
+    status = ("not significant" if "significant" in cand.colnames else
+              "significance not recorded" if "p_global" in cand.colnames else "not calibrated")
     return list(range(min(n_top, len(cand), MAX_CANDIDATE_FIGURES))), status
 
 
@@ -263,7 +263,8 @@ def fig_map(prepared, cand, path, n_circles=3, dpi=110, predicted=None):
     fig = plt.figure(figsize=(10, 6.2))
     rows, status = shown_candidates(cand, n_circles)
     what = {"significant": "significant candidates", "not significant": "top candidates (none significant)",
-            "not calibrated": "top candidates (not calibrated)", "": "no candidates"}[status]
+            "significance not recorded": "top candidates", "not calibrated": "top candidates (not calibrated)",
+            "": "no candidates"}[status]
     hp.mollview(m, fig=fig.number, title=f"Prepared map, {frame_text}: {what}", unit=UNIT,
                 min=-lim, max=lim, cmap="RdBu_r", badcolor="0.75", hold=True, format="%.0f")
     with warnings.catch_warnings():
@@ -631,9 +632,12 @@ def headline(s) -> str:
     if "bound" in s:
         return s["bound"]["statement"]
     b = s.get("best_candidate")
-    if b is not None and "p_global" in b:
+    if b is not None and "significant" in b:
         return (f"No significant circle pair; the first-ranked, {_pair_text(b)}, has {_p_sentence(b, n, floor)} "
                 "(not significant).")
+    if b is not None and "p_global" in b:
+        return (f"First-ranked circle pair: {_pair_text(b)}, {_p_sentence(b, n, floor)} (this calibration records "
+                "no significance).")
     if b is not None:
         return (f"Best circle pair: {_pair_text(b)} (not calibrated: run `twinring calibrate` for p-values).")
     return "No search results in this directory."
@@ -653,7 +657,7 @@ def summary_markdown(s) -> str:
         if c.get("spectrum"):
             line += f" (spectrum {c['spectrum']})"
         if c.get("p_floor") is not None:
-            line += f"; empirical p-values, the smallest possible is 1/(N+1) = {c['p_floor']:.2g}"
+            line += f"; no p-value is printed below 1/(N+1) = {c['p_floor']:.2g}"
         lines.append(line)
         if c.get("rates_not_usable"):
             lines.append("- false-alarm rates the simulations cannot resolve (thresholds not usable): "
@@ -716,7 +720,11 @@ def _null_model(d):
 
 
 def make_report(run_dir, cfg=None, log=None):
-    """Draw every figure the directory's contents allow, write summary.md / summary.json. Returns the summary."""
+    """Draw every figure the directory's contents allow, write summary.md / summary.json. Returns the summary.
+
+    ``log``: accepted for the stage interface; the figures are listed in the returned summary, and the
+    caller logs them (once).
+    """
     from .prepare import PREPARED_MAP, read_prepared
     from .results import write_text
 
