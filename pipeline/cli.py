@@ -36,6 +36,12 @@ def _merge_args(p):
     p.add_argument("--force", action="store_true", help="reuse an output directory made by a different config")
 
 
+def _config_ref_args(p):
+    p.add_argument("--defaults", nargs="?", const="-", metavar="FILE",
+                   help="write a complete YAML config of every default, annotated (to FILE, or stdout)")
+    p.add_argument("--section", action="append", metavar="NAME", help="only this section (repeatable)")
+
+
 def _report_args(p):
     p.add_argument("dir", metavar="DIR", help="a run directory")
 
@@ -55,6 +61,8 @@ COMMANDS = [
     ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "twinring.inject:cmd_inject"),
     ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "twinring.bound:cmd_bound"),
     ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "twinring.report:cmd_report"),
+    ("config", "every config key with its default, type, allowed values and help (--defaults: a YAML of them)",
+     _config_ref_args, "twinring.config_reference:cmd_config"),
     ("run", "every configured stage in order into one directory (unchanged stages skipped)", _config_arg, "twinring.workflow:cmd_run"),
 ]
 

@@ -160,6 +160,26 @@ def _origin_angle(centre, other):
     return np.arctan2(np.sum(e1 * e2r, -1), np.sum(e1 * e1r, -1))
 
 
+def wrap_twist_deg(twist_deg, decimals=None):
+    """Twist in degrees brought into [0, 360).
+
+    ``decimals``: the precision the value will be printed or stored with; a value
+    that would round to 360 there (for example 359.97 printed with one decimal)
+    becomes 0.  Floating-point reduction alone cannot promise this: ``x % 360.0``
+    is exactly 360.0 for a tiny negative x, and 359.97 prints as "360.0".
+    """
+    t = np.mod(np.asarray(twist_deg, dtype=float), 360.0)
+    if decimals is not None:
+        t = np.round(t, decimals)
+    t = np.where(t >= 360.0, 0.0, t) + 0.0          # + 0.0: no negative zero
+    return float(t) if t.ndim == 0 else t
+
+
+def format_twist(twist_deg, decimals=1) -> str:
+    """A twist for printing, in [0, 360) at the printed precision: ``format_twist(359.97) == "0.0"``."""
+    return f"{wrap_twist_deg(twist_deg, decimals):.{decimals}f}"
+
+
 def twist_from_reference(beta_ref, c1, c2, flip):
     """Convert a twist measured on rings sampled in the reference frame (``other=None``)
     into the pair convention of :func:`phase_frame` (radians, [0, 2pi)).

@@ -44,6 +44,7 @@ class Run:
     logger: logging.Logger
     started: float = field(default_factory=time.time)
     pending_config: str | None = None     # a forced run's config.yaml text, written when the stage succeeds
+    _logged: set = field(default_factory=set, repr=False)
 
     def commit(self):
         """Write the config.yaml held back by a forced run (the stage succeeded)."""
@@ -53,15 +54,23 @@ class Run:
         _PENDING[:] = [r for r in _PENDING if r is not self]
 
     def log(self, msg, *args):
-        self.logger.info(msg, *args)
+        """Log a line once: a stage's closing lines often repeat what its work already logged
+        (unit statistics, figure names), and each line belongs in the log only once."""
+        text = (msg % args) if args else str(msg)
+        if text in self._logged:
+            return
+        self._logged.add(text)
+        self.logger.info("%s", text)
 
     def progress(self, iterable, desc="", unit="it", total=None):
         """A progress bar with ETA on stderr (hidden when stderr is not a terminal or progress is off)."""
         from tqdm.auto import tqdm
 
-        disable = (not self.cfg.compute.progress) or None
-        return tqdm(iterable, desc=desc, unit=unit, total=total, disable=disable, file=sys.stderr,
-                    dynamic_ncols=True, leave=False)
+        if not self.cfg.compute.progress or not _is_terminal(sys.stderr):
+            return tqdm(iterable, desc=desc, unit=unit, total=total, disable=True)
+        width = _terminal_columns(sys.stderr)
+        return tqdm(iterable, desc=desc, unit=unit, total=total, file=sys.stderr, leave=False,
+                    dynamic_ncols=width is None, ncols=width)
 
     def elapsed(self):
         return time.time() - self.started
@@ -74,6 +83,25 @@ class Run:
         for line in lines:
             self.log(line)
             print(line)
+
+
+def _is_terminal(stream) -> bool:
+    try:
+        return bool(stream.isatty())
+    except (AttributeError, ValueError):
+        return False
+
+
+def _terminal_columns(stream):
+    """None when the terminal reports its width; 100 when it reports 0 columns (a pseudo-terminal
+    without a size, e.g. under `script` or some IDE consoles), where a width-following bar is empty."""
+    import os
+
+    try:
+        cols = os.get_terminal_size(stream.fileno()).columns
+    except (AttributeError, ValueError, OSError):
+        return 100
+    return None if cols > 0 else 100
 
 
 def _logger(run_dir: Path, stage: str):

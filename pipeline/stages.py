@@ -92,6 +92,8 @@ def search_prepared(cfg, run, prepared, runner=None):
 
 
 def summary_lines(cand, pool, plan):
+    from .rings import format_twist
+
     lines = [f"scanned {pool.pairs_scanned:,} circle pairs ({len(plan.radii_deg)} radii x both senses, all twists)",
              f"{len(cand)} candidates written"]
     if cand.meta.get("grid_warning"):
@@ -100,7 +102,7 @@ def summary_lines(cand, pool, plan):
         b = cand[0]
         lines.insert(0, (f"best: s = {b['s']:.3f} at radius {b['radius_deg']:.2f} deg, centres "
                          f"({b['lon1_deg']:.1f}, {b['lat1_deg']:.1f}) & ({b['lon2_deg']:.1f}, {b['lat2_deg']:.1f}), "
-                         f"twist {b['twist_deg']:.1f} deg, flip {bool(b['flip'])}"))
+                         f"twist {format_twist(b['twist_deg'])} deg, flip {bool(b['flip'])}"))
     return lines
 
 

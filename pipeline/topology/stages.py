@@ -201,6 +201,7 @@ def cmd_predict(args):
     from ..config import load_config
     from ..rundir import open_run
     from ..results import read_table
+    from ..rings import format_twist
 
     cfg = load_config(args.config)
     run = open_run(cfg, args.out, args.force, "predict")
@@ -214,7 +215,7 @@ def cmd_predict(args):
                  f"{list(cfg.topology.observer)}: {len(t)} circle pairs"]
     for r in t[:12]:
         lines.append(f"  radius {r['radius_deg']:6.2f} deg, separation {r['separation_deg']:6.2f} deg, "
-                     f"twist {r['twist_deg']:6.1f} deg, flip {bool(r['flip'])}  [{r['element']}]")
+                     f"twist {format_twist(r['twist_deg']):>6} deg, flip {bool(r['flip'])}  [{r['element']}]")
     if len(t) > 12:
         lines.append(f"  ... {len(t) - 12} more in {path.name}")
     run.finish(lines)
