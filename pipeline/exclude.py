@@ -598,3 +598,63 @@ def cmd_exclude(args):
     run = open_run(cfg, args.out, args.force, "exclude")
     run.finish(exclude_run(cfg, run))
     return 0
+
+
+# --------------------------------------------------------------------------- figures
+def exclusion_figures(run_dir, dpi=110):
+    """One PNG per space in the run's exclusion.ecsv (``fig_exclusion_<space>.png``); returns their paths.
+
+    Left: the shortest loop (fraction of 2 chi) against the observer's distance from it (chi), excluded
+    and allowed points (for E2: the screw's axis length against the observer's distance from the axis).
+    Right: the distribution of the allowed points' shortest loops and loops through the observer,
+    with the smallest allowed loop marked.  Nothing is drawn when the table is absent.
+    """
+    from .results import atomic_path, read_table
+
+    d = Path(run_dir)
+    p = d / EXCLUSION
+    if not p.exists():
+        return []
+    t = read_table(p, EXCLUSION)
+    if len(t) == 0:
+        return []
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    a_min = float(t.meta.get("alpha_min_deg", math.nan))
+    out = []
+    for name in dict.fromkeys(t["space"]):
+        sub = t[t["space"] == name]
+        ex = np.asarray(sub["excluded"], bool)
+        loop = np.asarray(sub["loop_min_chi"], float) / 2.0
+        clone = np.asarray(sub["clone_distance_chi"], float) / 2.0
+        off = np.asarray(sub["axis_offset_chi"], float)
+        fig, (a1, a2) = plt.subplots(1, 2, figsize=(10.5, 4.2))
+        a1.scatter(off[ex], loop[ex], s=6, c="C3", alpha=0.5, lw=0, label=f"excluded ({int(ex.sum())})")
+        a1.scatter(off[~ex], loop[~ex], s=8, c="C0", alpha=0.8, lw=0, label=f"allowed ({int((~ex).sum())})")
+        a1.set_xlabel("observer's distance from the shortest loop [chi]")
+        a1.set_ylabel("shortest loop / 2 chi")
+        a1.set_title(f"{name} ({M.TITLES[name]})", fontsize=9)
+        a1.legend(fontsize=8, loc="best")
+        if np.any(~ex):
+            bins = np.linspace(0.0, max(1.2, float(np.nanmax(np.r_[loop[~ex], clone[~ex]]))), 40)
+            a2.hist(loop[~ex], bins=bins, color="C0", alpha=0.7, label="shortest loop anywhere")
+            a2.hist(clone[~ex], bins=bins, color="C1", alpha=0.5, label="loop through the observer")
+            lo = float(np.min(loop[~ex]))
+            a2.axvline(lo, color="C0", ls="--", lw=1.2, label=f"smallest allowed: {lo:.3f}")
+            if math.isfinite(a_min):
+                a2.axvline(math.cos(math.radians(a_min)), color="k", ls=":", lw=1.0,
+                           label=f"cos(alpha_min = {a_min:.1f} deg)")
+        a2.set_xlabel("length / 2 chi (allowed points)")
+        a2.set_ylabel("points")
+        a2.set_title(f"N = {len(sub)} points, coverage {t.meta.get('coverage', '?')}", fontsize=9)
+        a2.legend(fontsize=7, loc="best")
+        fig.tight_layout()
+        path = d / f"{FIGURE_PREFIX}{name}.png"
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, dpi=dpi, format="png", bbox_inches="tight")
+        plt.close(fig)
+        out.append(path)
+    return out

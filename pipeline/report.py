@@ -371,6 +371,7 @@ def run_config(run_dir):
 def make_report(run_dir, cfg=None, log=None):
     """Draw every figure the directory's contents allow, write summary.md / summary.json. Returns the summary."""
     from .calibrate import load_null_model
+    from .exclude import exclusion_figures
     from .prepare import PREPARED_MAP, read_prepared
     from .results import write_text
 
@@ -395,6 +396,7 @@ def make_report(run_dir, cfg=None, log=None):
     if model is not None:
         figures.append(fig_null(model, peaks if peaks is not None and "z" in peaks.colnames else None,
                                 d / FIGURES[3], dpi))
+    figures += exclusion_figures(d, dpi)
     for f in figures:
         say(f"figure {f}")
     s = summarize(d, cfg, figures)

@@ -358,3 +358,43 @@ def test_bad_inputs_one_line(tmp_path, capsys):
     assert main(["exclude", str(cfg)]) == 2
     assert "exclude.spaces" in capsys.readouterr().err
     assert not (tmp_path / "o" / "exclusion.ecsv").exists()
+
+
+def test_run_executes_exclude_and_report_draws_it(tmp_path):
+    # `twinring run`: exclude runs when configured (after bound), the report draws one figure per space,
+    # and an unchanged rerun skips it (common practice, no source)
+    import yaml
+
+    from twinring import workflow
+
+    out = tmp_path / "out"
+    cfg = {"topology": {"space": "E1", "lengths": [1.5, 1.5, 1.5]},
+           "sky": {"nside": 16, "lmax": 32, "fwhm_deg": 5.0, "seed": 1},
+           "prepare": {"nside": 16, "lmax": 32, "fwhm_deg": 6.0},
+           "search": {"nside_centers": 2, "radius_deg": [40, 60, 20], "top": 3, "refine": False},
+           "exclude": {"spaces": ["E1", "E4"], "samples": 16, "alpha_min_deg": 10.0, "coverage": "run"},
+           "output": {"dir": str(out)}, "compute": {"progress": False}}
+    path = tmp_path / "run.yaml"
+    path.write_text(yaml.safe_dump(cfg))
+    status = workflow.run_workflow(workflow.load_config(path), echo=lambda s: None)
+    assert status["exclude"] == "ran" and list(status)[-2:] == ["exclude", "report"]
+    t = Table.read(out / "exclusion.ecsv")
+    assert t.meta["coverage"] == "run (antipodal)" and t.meta["coverage_radius_deg"] == [40.0, 60.0]
+    assert (out / "fig_exclusion_E1.png").exists() and (out / "fig_exclusion_E4.png").exists()
+    assert "fig_exclusion_E4.png" in (out / "summary.md").read_text()
+    # run coverage: only back-to-back pairs with radius 40-60 deg count; check each verdict directly
+    for r in t:
+        ang = [r[f"angle{i}_deg"] for i in (1, 2, 3) if np.isfinite(r[f"angle{i}_deg"])]
+        s = M.build_space(r["space"], [r[f"l{i}_chi"] for i in (1, 2, 3) if np.isfinite(r[f"l{i}_chi"])],
+                          ang or None, [r[f"observer_{c}_chi"] for c in "xyz"])
+        els = words(module_generators(s), depth=6)
+        u = brute_displacements(els, s.observer)
+        w = brute_displacements(np.linalg.inv(els), s.observer)
+        d = np.linalg.norm(u, axis=1)
+        with np.errstate(invalid="ignore"):
+            alpha = np.degrees(np.arccos(np.clip(d / 2, -1, 1)))
+        sep = np.degrees(np.arccos(np.clip(np.einsum("ni,ni->n", u, w) / (d * np.linalg.norm(w, axis=1)), -1, 1)))
+        seen = (d < 2) & (alpha >= 40 - 1e-9) & (alpha <= 60 + 1e-9) & (sep >= 179.0)
+        assert bool(r["excluded"]) == bool(np.any(seen))
+    status = workflow.run_workflow(workflow.load_config(path), echo=lambda s: None)
+    assert status["exclude"] == "skipped"
