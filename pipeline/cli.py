@@ -60,6 +60,8 @@ COMMANDS = [
     ("calibrate", "isotropic Gaussian skies through the same search -> thresholds.ecsv, p-values", _shard_args, "twinring.calibrate:cmd_calibrate"),
     ("inject", "injection-recovery campaign of a space family -> recovery.ecsv", _config_arg, "twinring.inject:cmd_inject"),
     ("bound", "smallest detectable radius -> lower bound on the size of space -> bound.ecsv", _config_arg, "twinring.bound:cmd_bound"),
+    ("exclude", "which lengths, angles and observer positions of a flat space the data exclude -> exclusion.ecsv",
+     _config_arg, "twinring.exclude:cmd_exclude"),
     ("report", "figures (PNG) and summary.md / summary.json of a run directory", _report_args, "twinring.report:cmd_report"),
     ("config", "every config key with its default, type, allowed values and help (--defaults: a YAML of them)",
      _config_ref_args, "twinring.config_reference:cmd_config"),

@@ -270,6 +270,41 @@ class BoundSection:
 
 
 @dataclass(frozen=True)
+class ExcludeSection:
+    """Which parameter points of the flat spaces the data exclude (pipeline/exclude.py)."""
+    spaces: tuple = _f((), "strs")
+    points: str | None = _f(None, "path?")
+    sampling: str = _f("sobol", "str", choices=("sobol", "halton", "grid"))
+    samples: int = _f(1024, "int", min=1, max=10000000)
+    seed: int = _f(13, "int", min=0)
+    length_range_chi: tuple = _f((0.2, 4.0), "floats", length=2)
+    angle_range_deg: tuple = _f((60.0, 120.0), "floats", length=2)
+    twists_deg: tuple = _f((0.0, 60.0, 90.0, 120.0, 180.0), "floats")
+    open_range_chi: float = _f(2.0, "float", min=0.0)
+    alpha_min_deg: float | None = _f(None, "float?", min=0.0, max=90.0, open_min=True)
+    coverage: str = _f("general", "str", choices=("general", "antipodal", "run"))
+    antipodal_tol_deg: float = _f(1.0, "float", min=0.0, max=90.0)
+
+    def check(self, where):
+        allowed = tuple(f"E{i}" for i in range(1, 18))
+        for s in self.spaces:
+            if s not in allowed:
+                raise where("spaces", list(self.spaces), "a list of spaces among " + ", ".join(allowed))
+        lo, hi = self.length_range_chi
+        if not 0 < lo <= hi:
+            raise where("length_range_chi", list(self.length_range_chi), "[min, max] chi with 0 < min <= max")
+        lo, hi = self.angle_range_deg
+        if not 0 < lo <= hi < 180:
+            raise where("angle_range_deg", list(self.angle_range_deg), "[min, max] degrees with 0 < min <= max < 180")
+        from .topology.manifolds import _twist_order
+
+        if not self.twists_deg or any(_twist_order(t) is None for t in self.twists_deg):
+            raise where("twists_deg", list(self.twists_deg), "a list of twists 360 p / q degrees with q <= 12")
+        if self.points and len(self.spaces) > 1:
+            raise where("spaces", list(self.spaces), "at most one space with listed points (or use topology.space)")
+
+
+@dataclass(frozen=True)
 class ReportSection:
     """Figures and summary (pipeline/report.py)."""
     circles: int = _f(3, "int", min=0, max=50)
@@ -292,6 +327,7 @@ SECTIONS = {
     "inject": InjectSection,
     "bound": BoundSection,
     "report": ReportSection,
+    "exclude": ExcludeSection,
 }
 
 
@@ -309,6 +345,7 @@ class RunConfig:
     inject: InjectSection = field(default_factory=InjectSection)
     bound: BoundSection = field(default_factory=BoundSection)
     report: ReportSection = field(default_factory=ReportSection)
+    exclude: ExcludeSection = field(default_factory=ExcludeSection)
     source: str = ""          # the file the config came from (not a YAML key)
     present: tuple = ()       # the sections the YAML file named
 
@@ -392,6 +429,10 @@ def _coerce(source, keypath, value, meta, base_dir):
         ):
             raise bad(f"a list of {n if n else 'some'} numbers")
         return tuple(float(x) for x in value)
+    if kind == "strs":
+        if not isinstance(value, (list, tuple)) or not all(isinstance(x, str) and x for x in value):
+            raise bad("a list of names")
+        return tuple(value)
     if kind == "any":
         return value
     raise TypeError(f"unknown field kind {kind}")

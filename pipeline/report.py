@@ -725,6 +725,7 @@ def make_report(run_dir, cfg=None, log=None):
     ``log``: accepted for the stage interface; the figures are listed in the returned summary, and the
     caller logs them (once).
     """
+    from .exclude import exclusion_figures
     from .prepare import PREPARED_MAP, read_prepared
     from .results import write_text
 
@@ -760,6 +761,7 @@ def make_report(run_dir, cfg=None, log=None):
             path, _ = fig_candidate(prepared, row, d / CANDIDATE_FIGURE.format(rank), weighting, dpi, status,
                                     p_text(row, "p_global", floor, n))
             figures.append(path)
+    figures += exclusion_figures(d, dpi)
     s = summarize(d, cfg, figures)
     write_text(d / "summary.json", json.dumps(s, indent=2, default=str, ensure_ascii=False) + "\n")
     write_text(d / "summary.md", summary_markdown(s))

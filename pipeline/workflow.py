@@ -12,6 +12,7 @@ search     candidates.ecsv, peaks.ecsv                                 always
 calibrate  thresholds.ecsv, null_peaks.ecsv; p-values in the tables    the config has a calibrate section
 inject     injections.ecsv, recovery.ecsv                              the config has an inject section
 bound      bound.ecsv                                                  inject runs or a bound section
+exclude    exclusion.ecsv (+ exclusion_summary.ecsv)                   the config has an exclude section
 report     fig_*.png, summary.md, summary.json                         always
 =========  ==========================================================  ===============================
 
@@ -44,7 +45,7 @@ from pathlib import Path
 from .config import InputError, load_config
 
 MANIFEST = "stages.json"
-ORDER = ("sky", "prepare", "search", "calibrate", "inject", "bound", "report")
+ORDER = ("sky", "prepare", "search", "calibrate", "inject", "bound", "report")   # exclude: after bound (planned_stages)
 
 SECTIONS_READ = {
     "sky": ("topology", "sky", "cosmology"),
@@ -53,6 +54,7 @@ SECTIONS_READ = {
     "calibrate": ("calibrate", "cosmology"),
     "inject": ("inject", "topology", "sky", "cosmology"),
     "bound": ("bound", "cosmology"),
+    "exclude": ("exclude", "topology", "search"),
     "report": ("report",),
 }
 DEPENDS = {
@@ -62,7 +64,8 @@ DEPENDS = {
     "calibrate": ("search",),
     "inject": ("calibrate",),
     "bound": ("inject", "calibrate"),
-    "report": ("sky", "prepare", "search", "calibrate", "inject", "bound"),
+    "exclude": ("bound",),
+    "report": ("sky", "prepare", "search", "calibrate", "inject", "bound", "exclude"),
 }
 OUTPUTS = {
     "sky": ("sky.fits", "circles.ecsv"),
@@ -71,6 +74,7 @@ OUTPUTS = {
     "calibrate": ("thresholds.ecsv", "null_peaks.ecsv"),
     "inject": ("injections.ecsv", "recovery.ecsv"),
     "bound": ("bound.ecsv",),
+    "exclude": ("exclusion.ecsv",),
     "report": ("summary.md", "summary.json"),
 }
 
@@ -96,6 +100,11 @@ def planned_stages(cfg) -> list:
         if "inject" not in present:
             raise InputError(f"{cfg.source}: bound: needs an inject section (recovery); allowed: add `inject:`")
         out.append("bound")
+    if "exclude" in present:
+        if cfg.exclude.alpha_min_deg is None and "bound" not in out:
+            raise InputError(f"{cfg.source}: exclude.alpha_min_deg: found null and no bound stage; allowed: a "
+                             "radius in degrees, or inject and bound sections")
+        out.append("exclude")
     out.append("report")
     return out
 
@@ -127,6 +136,8 @@ def stage_key(name, cfg, keys) -> str:
         blob["inputs"] = {"listed": _checksum(cfg.search.listed)}
     if name == "calibrate":
         blob["inputs"] = {"spectrum": _checksum(cfg.calibrate.spectrum_file)}
+    if name == "exclude":
+        blob["inputs"] = {"points": _checksum(cfg.exclude.points)}
     raw = json.dumps(blob, sort_keys=True, default=str).encode()
     return hashlib.sha256(raw).hexdigest()[:16]
 
@@ -238,8 +249,14 @@ def _do_report(cfg, run, state):
     return [f"figure: {f}" for f in s["figures"]] + [s["headline"]]
 
 
+def _do_exclude(cfg, run, state):
+    from .exclude import exclude_run
+
+    return exclude_run(cfg, run)
+
+
 BODIES = {"sky": _do_sky, "prepare": _do_prepare, "search": _do_search, "calibrate": _do_calibrate,
-          "inject": _do_inject, "bound": _do_bound, "report": _do_report}
+          "inject": _do_inject, "bound": _do_bound, "exclude": _do_exclude, "report": _do_report}
 
 
 # --------------------------------------------------------------------------- the command

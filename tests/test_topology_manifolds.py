@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import itertools
+import math
 
 import numpy as np
 import pytest
@@ -198,3 +199,34 @@ def test_gpc_units_convert_with_the_cosmology():
     s = space_from_config(cfg.topology, cfg.cosmology)
     assert np.allclose(s.lattice, 1.2 * np.eye(3))
     assert np.allclose(s.observer, [0.1, 0, 0])
+
+
+@pytest.mark.parametrize("name", ["E7", "E8", "E13"])
+def test_monoclinic_cell_angle(name):
+    # E7 (Pc), E8 (Cc) and E13 keep a free angle beta in the mirror plane between the glide axis and c
+    # (monoclinic cells; International Tables for Crystallography, Vol. A, from memory).  With beta != 90 deg
+    # the group must still act freely, be non-orientable, close on its lattice, and the cover cell have
+    # volume 2a b c sin(beta) (E13: area 2a c sin(beta)); beta = 90 is the default.
+    L = {"E7": [0.7, 1.1, 1.2], "E8": [0.7, 1.1, 1.2], "E13": [0.7, 1.2]}[name]
+    s = M.build_space(name, L, [70.0], (0.05, 0.1, -0.1))
+    assert s.holonomy_order() == 2 and not s.orientable
+    for label, g, d in M.elements_within(s, 3.0):
+        assert not M.has_fixed_point(g), label
+    a, c = L[0], L[-1]
+    if s.compact:
+        assert s.cover_volume() == pytest.approx(2 * a * L[1] * c * math.sin(math.radians(70.0)), rel=1e-12)
+    else:
+        G = s.lattice.T @ s.lattice
+        assert math.sqrt(np.linalg.det(G)) == pytest.approx(2 * a * c * math.sin(math.radians(70.0)), rel=1e-12)
+    for _, h in s.holonomy:
+        coords = np.linalg.lstsq(s.lattice, h.R @ s.lattice, rcond=None)[0]
+        assert np.allclose(coords, np.rint(coords), atol=1e-9)
+    sq = [g @ g for _, g in s.generators]                     # the glide squared is a lattice translation
+    for e in sq:
+        coords = np.linalg.lstsq(s.lattice, e.t, rcond=None)[0]
+        assert np.allclose(s.lattice @ coords, e.t) and np.allclose(coords, np.rint(coords), atol=1e-9)
+    d90 = M.build_space(name, L, [90.0])
+    d0 = M.build_space(name, L)
+    assert np.allclose(d90.lattice, d0.lattice) and np.allclose(d90.generators[-1][1].t, d0.generators[-1][1].t)
+    with pytest.raises(M.ParamError):
+        M.build_space(name, L, [180.0])

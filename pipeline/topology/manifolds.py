@@ -29,8 +29,10 @@ E6     three half-turn screws on disjoint           [a, b, c]               4
        perpendicular axes, translating a, b, c
        (Hantzsche-Wendt, P2_12_12_1)
 E7     a: glide (mirror y -> -y, + a x), b y, c z   [a, b, c]               2
-       (Pc)
-E8     a: glide as E7, b y, c: (0, b/2, c)  (Cc)    [a, b, c]               2
+       (Pc); angles_deg [beta]: c turned in the
+       mirror plane to angle beta from x
+E8     a: glide as E7, b y, c: (0, b/2, c)  (Cc);   [a, b, c]               2
+       angles_deg [beta] as E7
 E9     a: glide as E7, b y, c: half turn about z    [a, b, c]               4
        + c z (Pca2_1)
 E10    a: glide (+a x, mirror at y = b/4), b y,     [a, b, c]               4
@@ -38,7 +40,7 @@ E10    a: glide (+a x, mirror at y = b/4), b y,     [a, b, c]               4
 E11    a x, b (angle gamma), open along z           [a, b]                  1
 E12    a x, c: half turn about z + c z; open y      [a, c]                  2
 E13    a: glide as E7, c z; open along y (the       [a, c]                  2
-       mirror's normal)
+       mirror's normal); angles_deg [beta] as E7
 E14    a: glide as E7, b y; open along z (in the    [a, b]                  2
        mirror plane)
 E15    a: glide as E7, c: half turn about z + c z;  [a, c]                  4
@@ -97,7 +99,7 @@ _NLEN = {
     "E9": (3,), "E10": (3,), "E11": (2,), "E12": (2,), "E13": (2,), "E14": (2,), "E15": (2,),
     "E16": (1,), "E17": (1,), "E18": (0,),
 }
-_NANG = {"E1": 3, "E2": 1, "E11": 1, "E16": 1}
+_NANG = {"E1": 3, "E2": 1, "E7": 1, "E8": 1, "E11": 1, "E13": 1, "E16": 1}
 _LEN_TEXT = {
     "E1": "[a, b, c]", "E2": "[a, b, c]", "E3": "[a, c] or [a, a, c]", "E4": "[a, c] or [a, a, c]",
     "E5": "[a, c] or [a, a, c]", "E6": "[a, b, c]", "E7": "[a, b, c]", "E8": "[a, b, c]", "E9": "[a, b, c]",
@@ -107,7 +109,10 @@ _LEN_TEXT = {
 _ANG_TEXT = {
     "E1": "null or [alpha, beta, gamma] degrees (angles b-c, a-c, a-b), each in (0, 180), a valid cell",
     "E2": "null or [gamma] degrees, the angle between a and b in (0, 180)",
+    "E7": "null or [beta] degrees, the angle in the mirror plane between the glide axis and c, in (0, 180)",
+    "E8": "null or [beta] degrees, the angle in the mirror plane between the glide axis and c, in (0, 180)",
     "E11": "null or [gamma] degrees, the angle between a and b in (0, 180)",
+    "E13": "null or [beta] degrees, the angle in the mirror plane between the glide axis and c, in (0, 180)",
     "E16": "null or [theta] degrees, a twist 360 p / q with q <= 12",
 }
 
@@ -285,12 +290,16 @@ def _domain_space(name, lengths, angles):
         a, b, c = L
         glide_t = np.array([a, b / 2, 0.0]) if name == "E10" else a * ex
         gens = [("a", Isometry(MIRROR_Y, glide_t)), ("b", _tr(b * ey))]
+        # E7, E8: c lies in the mirror plane at angle beta to the glide axis (monoclinic cell; default 90)
+        be = np.radians(angles[0]) if angles is not None and name in ("E7", "E8") else math.pi / 2
+        vc = c * np.array([math.cos(be), 0.0, math.sin(be)])
+        vc[np.abs(vc) < 1e-15] = 0.0
         if name == "E7":
-            gens.append(("c", _tr(c * ez)))
-            lat = np.diag([2 * a, b, c])
+            gens.append(("c", _tr(vc)))
+            lat = np.stack([2 * a * ex, b * ey, vc], axis=1)
         elif name == "E8":
-            gens.append(("c", _tr(np.array([0.0, b / 2, c]))))
-            lat = np.stack([2 * a * ex, b * ey, np.array([0.0, b / 2, c])], axis=1)
+            gens.append(("c", _tr(vc + b / 2 * ey)))
+            lat = np.stack([2 * a * ex, b * ey, vc + b / 2 * ey], axis=1)
         else:
             gens.append(("c", Isometry(HALF_Z, c * ez)))
             lat = np.diag([2 * a, b, 2 * c])
@@ -306,8 +315,11 @@ def _domain_space(name, lengths, angles):
         lat, opn = np.stack([a * ex, 2 * c * ez], axis=1), [ey]
     elif name == "E13":
         a, c = L
-        gens = [("a", Isometry(MIRROR_Y, a * ex)), ("c", _tr(c * ez))]
-        lat, opn = np.stack([2 * a * ex, c * ez], axis=1), [ey]
+        be = np.radians(angles[0]) if angles is not None else math.pi / 2
+        vc = c * np.array([math.cos(be), 0.0, math.sin(be)])
+        vc[np.abs(vc) < 1e-15] = 0.0
+        gens = [("a", Isometry(MIRROR_Y, a * ex)), ("c", _tr(vc))]
+        lat, opn = np.stack([2 * a * ex, vc], axis=1), [ey]
     elif name == "E14":
         a, b = L
         gens = [("a", Isometry(MIRROR_Y, a * ex)), ("b", _tr(b * ey))]
