@@ -181,7 +181,8 @@ def bound_run(cfg, run):
         raise InputError(f"{run.dir}: no candidates.ecsv; allowed: run `twinring search` and `twinring calibrate` first")
     level = cfg.bound.false_alarm if cfg.bound.false_alarm is not None else cfg.calibrate.significance
     n_sims = int(tables[0].meta.get("calibration_n_sims", 0))
-    sig = significant_rows(tables, level, n_sims)
+    # physical pairs are the candidates; per-radius peaks only stand in when there are no candidates
+    sig = significant_rows(tables[:1], level, n_sims)
     d1 = float(rec.meta.get("distance_per_size", 1.0))
     physics = str(rec.meta.get("physics_label", rec.meta.get("physics", "")))
     row = bound_row(rec, cfg.bound.recovery, level, sig, cfg.inject.radius_tol_deg, d1,
