@@ -529,7 +529,7 @@ def candidate_table(rows) -> Table:
     A = np.array([x[0] for x in rows]); B = np.array([x[1] for x in rows])
     flip = np.array([x[5] == 1 for x in rows])
     beta = np.array([x[6] for x in rows])
-    tw = np.degrees(rings.twist_from_reference(beta, A, B, flip)) % 360.0
+    tw = rings.wrap_twist_deg(np.degrees(rings.twist_from_reference(beta, A, B, flip)), 6)
     lon1, lat1 = rings.vec_to_lonlat(A)
     lon2, lat2 = rings.vec_to_lonlat(B)
     t = Table()
@@ -562,7 +562,7 @@ def peak_table(plan: SearchPlan, pool: Pool) -> Table:
             lon1, lat1 = rings.vec_to_lonlat(a)
             lon2, lat2 = rings.vec_to_lonlat(b)
             rows.append((r, bool(sense), float(s), float(lon1), float(lat1), float(lon2), float(lat2),
-                         float(rings.separation_deg(a, b)), tw % 360.0))
+                         float(rings.separation_deg(a, b)), rings.wrap_twist_deg(tw, 6)))
     t = Table(rows=rows, names=["radius_deg", "flip", "s", "lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg",
                                 "separation_deg", "twist_deg"],
               dtype=[float, bool, float, float, float, float, float, float, float])

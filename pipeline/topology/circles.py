@@ -39,7 +39,7 @@ def phase_map_fit(phi, psi):
         mean = z.mean()
         spread = float(np.max(np.abs(z - mean / abs(mean)))) if abs(mean) > 0 else 2.0
         if best is None or spread < best[2]:
-            best = (float(np.degrees(np.angle(mean)) % 360.0), flip, spread)
+            best = (rings.wrap_twist_deg(np.degrees(np.angle(mean))), flip, spread)
     twist, flip, spread = best
     if spread > 1e-6:
         raise RuntimeError(f"circle map is not a rotation or reflection of phase (spread {spread:.2e})")
