@@ -199,7 +199,7 @@ def bound_run(cfg, run):
 
 def cmd_bound(args):
     from .rundir import open_run
-    from .stages import load_run_config
+    from .inputs import load_run_config
 
     cfg = load_run_config(args)
     run = open_run(cfg, args.out, args.force, "bound")

@@ -540,7 +540,7 @@ def calibrate_shard(cfg, run, sky, prepared, shard):
 
     from .execute import shard_units
     from .results import write_text
-    from .stages import listed_pairs
+    from .inputs import listed_pairs
 
     ctx = make_context(cfg, sky, prepared, listed_pairs(cfg))
     n = int(cfg.calibrate.simulations)
@@ -622,7 +622,7 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
     import time
 
     from .results import provenance, read_table, write_table
-    from .stages import input_files, listed_pairs
+    from .inputs import input_files, listed_pairs
 
     c = cfg.calibrate
     if c.spectrum == "file":
@@ -701,7 +701,7 @@ def _p_text(row, n_sims):
 
 def cmd_calibrate(args):
     from .rundir import open_run
-    from .stages import load_run_config
+    from .inputs import load_run_config
 
     cfg = load_run_config(args)
     if cfg.calibrate.spectrum == "file":

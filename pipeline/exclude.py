@@ -588,7 +588,7 @@ def exclude_run(cfg, run):
 
 def cmd_exclude(args):
     from .rundir import open_run
-    from .stages import load_run_config
+    from .inputs import load_run_config
 
     from .rundir import resolve_out
 

@@ -493,7 +493,7 @@ def inject_run(cfg, run, sky=None):
     from .calibrate import load_data, load_null_model
     from .execute import run_units
     from .results import provenance, write_table
-    from .stages import input_files
+    from .inputs import input_files
 
     model = load_null_model(run.dir)
     shape = shape_from_config(cfg)
@@ -534,7 +534,7 @@ def inject_run(cfg, run, sky=None):
 
 def cmd_inject(args):
     from .rundir import open_run
-    from .stages import load_run_config
+    from .inputs import load_run_config
 
     from .calibrate import load_data
 

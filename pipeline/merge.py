@@ -1,4 +1,4 @@
-"""Search chunks on disk: the chunk store of a run, shard manifests, and merging shards.
+"""Search chunks on disk: the chunk store of a run and shard manifests (merging: stages.merge_shards).
 
 A search run keeps every finished chunk in ``<run dir>/chunks/`` (see
 :mod:`twinring.execute`) and writes ``shard.json``, the manifest::
@@ -13,7 +13,7 @@ the rings).  It does not depend on the backend, worker count, output dir or
 shard split, so shards run on different machines with different compute
 settings can be merged.  A plain run is shard 0/1.
 
-:func:`merge_shards` checks that the given directories are the complete set
+:func:`twinring.stages.merge_shards` checks that the given directories are the complete set
 of shards of one work key (refusing different configs, missing, duplicate or
 unfinished shards), loads the plan's prepared map from the first shard, and
 runs the same combine + finalize as a single run, so the merged tables are
@@ -33,7 +33,7 @@ import numpy as np
 
 from . import execute
 from .store import read_shard_json, refuse_out_among_inputs  # noqa: F401
-from .config import InputError, load_config
+from .config import InputError
 
 MANIFEST = "shard.json"
 CHUNK_TAG = "chunks"
@@ -230,42 +230,3 @@ def load_prepared_for_merge(cfg, dirs):
 
 
 load_shard_units = execute.load_shard_units    # (one helper for both merges, in twinring.execute)
-
-
-def merge_shards(dirs, out, force=False, progress=True):
-    """Merge finished shard directories into ``out``: the tables an unsplit run writes. Returns the stages tuple."""
-    from . import search as search_mod
-    from . import prepare as prep_mod
-    from .results import provenance
-    from .rundir import CONFIG_NAME, open_run
-    from . import stages
-
-    dirs = [Path(d).expanduser() for d in dirs]
-    refuse_out_among_inputs(out, dirs)
-    mans = check_shards(dirs)
-    first = mans[0][0]
-    cfg = load_config(first / CONFIG_NAME)
-    key = mans[0][1]["work_key"]
-    n = mans[0][1]["shard"][1]
-    prepared, _ = load_prepared_for_merge(cfg, [d for d, _ in mans])
-    table = stages.listed_pairs(cfg)
-    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash())
-    if plan_key(plan) != key:
-        raise InputError(f"{first}: the stored prepared map and config give work key {plan_key(plan)}, the shards "
-                         f"were made with {key}; allowed: shard directories left as `twinring search` wrote them")
-    results = {}
-    for d, m in mans:
-        results.update(load_shard_units(d, CHUNK_TAG, m["units"], key, f"shard {m['shard'][0]}/{n}", "chunk"))
-    run = open_run(cfg, out, force, "merge")
-    run.log(f"merging {n} shard(s): " + ", ".join(str(d) for d, _ in mans))
-    prep_mod.write_prepared(prepared, run.dir, provenance(cfg, stages.input_files(cfg), "prepare"))
-    units = plan.chunk_ids()
-    for u in units:
-        execute.store_unit(run.dir, CHUNK_TAG, u, results[execute._norm(u)], key)
-    write_manifest(run.dir, cfg, key, None, units, units)
-
-    def runner(plan_, chunks):
-        return [results[execute._norm(c)] for c in chunks]
-
-    plan_, pool, cand, peaks = stages.search_prepared(cfg, run, prepared, runner=runner)
-    return run, plan_, pool, cand, peaks

@@ -12,17 +12,10 @@ import numpy as np
 
 from . import prepare as prep_mod
 from . import search as search_mod
-from .config import InputError, load_config
-from .results import provenance, read_table, write_table
-from .rundir import open_run, write_json
-
-
-def load_run_config(args, overrides=None):
-    return load_config(args.config, overrides)
-
-
-def input_files(cfg):
-    return {"map": cfg.map.path, "mask": cfg.map.mask, "listed": cfg.search.listed}
+from .config import InputError, load_config  # noqa: F401
+from .inputs import input_files, listed_pairs, load_run_config  # noqa: F401  (stage edges use them)
+from .results import provenance, write_table
+from .rundir import open_run
 
 
 def prepared_for(cfg, run, prepared=None):
@@ -55,20 +48,6 @@ def cmd_prepare(args):
     run.finish([f"prepared map: nside {p.nside}, lmax {p.lmax}, fwhm {p.fwhm_deg} deg, "
                 f"{100 * float(np.mean(p.mask > 0.5)) if p.mask is not None else 100:.1f}% of the sky usable"])
     return 0
-
-
-def listed_pairs(cfg):
-    if cfg.search.family != "listed":
-        return None
-    t = read_table(cfg.search.listed, "search.listed table")
-    need = {"lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg"}
-    missing = sorted(need - set(t.colnames))
-    if missing:
-        raise InputError(f"{cfg.search.listed}: search.listed table lacks columns {', '.join(missing)}; "
-                         f"allowed: a table with {', '.join(sorted(need))}")
-    if len(t) == 0:
-        raise InputError(f"{cfg.search.listed}: search.listed table has no rows; allowed: at least one circle pair")
-    return t
 
 
 def search_prepared(cfg, run, prepared, runner=None):
@@ -130,13 +109,51 @@ def cmd_search(args):
 
 def cmd_merge(args):
     """Combine finished shard directories into the tables of an unsplit run."""
-    from . import merge as merge_mod
     from . import calibrate
 
     if (Path(args.dirs[0]) / calibrate.CAL_SHARD).exists():
         run, lines = calibrate.merge_calibration_shards(args.dirs, args.out, getattr(args, "force", False))
         run.finish(lines)
         return 0
-    run, plan, pool, cand, peaks = merge_mod.merge_shards(args.dirs, args.out, getattr(args, "force", False))
+    run, plan, pool, cand, peaks = merge_shards(args.dirs, args.out, getattr(args, "force", False))
     run.finish(summary_lines(cand, pool, plan))
     return 0
+
+
+def merge_shards(dirs, out, force=False, progress=True):
+    """Merge finished shard directories into ``out``: the tables an unsplit run writes. Returns the stages tuple."""
+    from . import execute
+    from .execute import load_shard_units
+    from .merge import CHUNK_TAG, check_shards, load_prepared_for_merge, plan_key, write_manifest
+    from .store import refuse_out_among_inputs
+    from .rundir import CONFIG_NAME
+
+    dirs = [Path(d).expanduser() for d in dirs]
+    refuse_out_among_inputs(out, dirs)
+    mans = check_shards(dirs)
+    first = mans[0][0]
+    cfg = load_config(first / CONFIG_NAME)
+    key = mans[0][1]["work_key"]
+    n = mans[0][1]["shard"][1]
+    prepared, _ = load_prepared_for_merge(cfg, [d for d, _ in mans])
+    table = listed_pairs(cfg)
+    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash())
+    if plan_key(plan) != key:
+        raise InputError(f"{first}: the stored prepared map and config give work key {plan_key(plan)}, the shards "
+                         f"were made with {key}; allowed: shard directories left as `twinring search` wrote them")
+    results = {}
+    for d, m in mans:
+        results.update(load_shard_units(d, CHUNK_TAG, m["units"], key, f"shard {m['shard'][0]}/{n}", "chunk"))
+    run = open_run(cfg, out, force, "merge")
+    run.log(f"merging {n} shard(s): " + ", ".join(str(d) for d, _ in mans))
+    prep_mod.write_prepared(prepared, run.dir, provenance(cfg, input_files(cfg), "prepare"))
+    units = plan.chunk_ids()
+    for u in units:
+        execute.store_unit(run.dir, CHUNK_TAG, u, results[execute._norm(u)], key)
+    write_manifest(run.dir, cfg, key, None, units, units)
+
+    def runner(plan_, chunks):
+        return [results[execute._norm(c)] for c in chunks]
+
+    plan_, pool, cand, peaks = search_prepared(cfg, run, prepared, runner=runner)
+    return run, plan_, pool, cand, peaks

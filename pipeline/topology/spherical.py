@@ -481,7 +481,7 @@ def space_meta(space: SphericalSpace) -> dict:
 
 def spherical_from_config(topology, cosmology, source="<config>") -> SphericalSpace:
     """Build the configured spherical space; chi/R from ``cosmology.omega_k`` (astropy background)."""
-    from ..config import InputError
+    from ..errors import InputError
     from ..cosmology import chi_over_r
 
     ok = float(getattr(cosmology, "omega_k", 0.0)) if cosmology is not None else 0.0
