@@ -111,6 +111,9 @@ def data_spectrum(prepared, prep) -> np.ndarray:
     # the window prepare applied (from the input map's beam to the target beam): dividing it out
     # gives the spectrum of the input map, instrument beam included, which prepare then re-applies
     win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, prep.input_fwhm_deg)
+    filt = prep_mod.filter_window(prep)      # prepare's multipole filter, re-applied to every simulation
+    if filt is not None:
+        win = win * filt
     cl = np.zeros(lmax + 1)
     ok = win**2 > 1e-12
     cl[ok] = pseudo[ok] / win[ok] ** 2

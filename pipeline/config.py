@@ -60,6 +60,7 @@ class PrepareSection:
     lmin: int = _f(2, "int", min=0)
     remove_dipole: bool = _f(True, "bool")
     iterations: int = _f(3, "int", min=0, max=10)
+    filter: str = _f("none", "str", choices=("none", "optimal"))
 
     def check(self, where):
         if self.lmax > 3 * self.nside - 1:

@@ -40,6 +40,7 @@ import healpy as hp
 
 from .config import InputError, PrepareSection
 from .skymap import SkyMap, load_map, write_map  # noqa: F401
+from .filters import filter_window  # noqa: F401  (calibrate divides it out of the data spectrum)
 
 log = logging.getLogger("twinring.prepare")
 
@@ -202,6 +203,17 @@ def check_variance(src, scale, out_map, mask_out, prep: PrepareSection):
                          f"prepare.lmin..lmax (prepared rms above {MIN_RELATIVE_RMS:g} of the input's)")
 
 
+def apply_filter(alm, prep: PrepareSection) -> list:
+    """Multiply ``alm`` in place by the multipole filter ``prep.filter`` (twinring.filters); its notes."""
+    from .filters import filter_hash, filter_window
+
+    f = filter_window(prep)
+    if f is None:
+        return []
+    hp.almxfl(alm, f, inplace=True)
+    return [f"multipole filter {prep.filter} applied (sha256 {filter_hash(f)})"]
+
+
 def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
 
@@ -245,6 +257,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
     hp.almxfl(alm, bl, inplace=True)
     notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg in total (input beam {prep.input_fwhm_deg} deg); "
                  f"l < {prep.lmin} removed")
+    notes += apply_filter(alm, prep)
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
     check_variance(src, scale, out_map, mask_out, prep)

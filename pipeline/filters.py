@@ -1,0 +1,330 @@
+"""What matches on both views of a circle, and the multipole filter that weights it.
+
+Decomposition (:func:`source_split`).  CAMB's line-of-sight temperature source
+(Newtonian-gauge form, as ``camb.symbolic.get_scalar_temperature_sources``
+writes it) is the sum of
+
+* the monopole term ``g (Delta_g/4 + Psi)`` (Sachs-Wolfe plus intrinsic
+  density): a function of the point of last scattering only, so it is the same
+  on both views of a matched point (``match``);
+* the Doppler term ``(g v_b)' / k`` (the baryon velocity projected on the line
+  of sight);
+* the integrated Sachs-Wolfe term ``2 exp(-tau) phi'`` (``phi`` the Weyl
+  potential (Phi + Psi)/2), gathered along the path;
+* a small quadrupole (polarisation) term, kept here with the monopole part.
+
+The symbolic module's custom sources need a Fortran compiler at run time, so
+the split is done with CAMB's named time-evolution outputs instead: the
+Doppler and ISW transfer functions are integrated along the line of sight
+from ``v_newtonian_baryon``, ``Weyl`` (= k^2 phi) and the visibility, and the
+match part is CAMB's total transfer minus the two.  The line-of-sight
+integral of CAMB's own ``T_source`` reproduces CAMB's ``delta_p_l_k`` to
+1e-3 on this grid (checked in tests/test_filters.py), so the parts share
+CAMB's normalisation and sign.
+
+Decorrelation (:func:`pair_spectrum`).  The two lines of sight to a point of a
+circle pair of angular radius alpha (a pure translation) meet at
+theta = 180 deg - 2 alpha (n1 . n2 = -cos 2 alpha).  Model used here, per
+multipole, for the covariance of the two views:
+
+* match: identical, coefficient 1;
+* Doppler (v . n, a dipole in the direction of view): coefficient
+  n1 . n2 = -cos 2 alpha (1 at alpha = 90 deg, 0 at 45 deg, -1 for small circles);
+* ISW (an integral seen along two paths leaving the point, and reaching the
+  observer's images, at angle theta): P_l(cos theta), as for one sky seen in
+  two directions theta apart;
+* cross spectra: the mean of the two parts' coefficients.
+
+This is exact at zero lag for the unfiltered Doppler term and an
+approximation otherwise (the filtered Doppler field is not local).
+
+Expected S and the optimal filter.  For a ring of radius alpha the Fourier
+mode m of an isotropic field with spectrum C_l has power
+P_m = sum_l C_l lambda_lm(cos alpha)^2 (lambda_lm the normalised associated
+Legendre function).  With ring weights W_m (1 or |m|, m >= 1) and a filter
+f_l on the a_lm, beam b_l, noise N_l:
+
+    E[S_true](alpha) = sum_m W_m P^pair_m / sum_m W_m P^tot_m
+    sigma_null(alpha) = sqrt( sum_m W_m^2 (P^tot_m)^2 / 2 ) / sum_m W_m P^tot_m
+
+with P^pair from f_l^2 b_l^2 C^pair_l(alpha) and P^tot from
+f_l^2 (b_l^2 C_l + N_l).  The detection margin of a true pair over the
+null's spread is their ratio (:func:`margin`).  With modes independent per
+l, the margin is largest for f_l^2 proportional to b_l^2 C^pair_l /
+(b_l^2 C_l + N_l)^2 (the matched filter for a known correlated part in
+Gaussian noise); :func:`optimal_filter` averages that over the reference
+radii :data:`REF_RADII_DEG` (one filter for all radii).  Key, Cornish,
+Spergel & Starkman (2007, Phys. Rev. D 75, 084034) weight multipoles by the
+part of the power that matches on both circles; the README says where this
+follows them and where it differs.
+"""
+from __future__ import annotations
+
+import functools
+import hashlib
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+FILTERS = ("none", "optimal")
+REF_RADII_DEG = (20.0, 30.0, 40.0, 50.0, 60.0, 70.0)
+ETA_CUT = 2.2       # conformal times after ETA_CUT x the visibility peak count as "late" (ISW, reionisation)
+X_FLOOR = 1e-6       # smallest squared filter weight relative to the largest
+
+
+# --------------------------------------------------------------------------- decomposition
+@dataclass(frozen=True)
+class SourceSplit:
+    """Per-l spectra (uK^2, l = 0..lmax) of the parts of the temperature and their cross spectra."""
+
+    lmax: int
+    total: np.ndarray        # C_l of CAMB's total transfer (this q grid)
+    match: np.ndarray        # monopole (SW + density) + quadrupole term
+    doppler: np.ndarray
+    isw: np.ndarray
+    match_doppler: np.ndarray   # cross spectra (counted once; total = sum of autos + 2 x crosses)
+    match_isw: np.ndarray
+    doppler_isw: np.ndarray
+    camb_total: np.ndarray   # CAMB's own unlensed TT (reference)
+
+    @property
+    def unmatched(self) -> np.ndarray:
+        """Everything that is not the match auto spectrum: total - match."""
+        return self.total - self.match
+
+
+def _split_transfers(lmax, cosmo, q_stride=1):
+    """CAMB total, Doppler and ISW transfer functions Delta_l(q) (dT/T per unit curvature)."""
+    import camb
+    from scipy.special import spherical_jn
+    from . import cosmology
+
+    params = cosmology._params(cosmo)
+    c = cosmology._Defaults(*params)
+    p = cosmology.camb_params(c, lmax=lmax, max_eta_k=8.0 * lmax + 50.0)
+    res = camb.get_transfer_functions(p)
+    td = res.get_cmb_transfer_data("scalar")
+    ells = np.asarray(td.L)
+    want = np.arange(2, lmax + 1)
+    idx = np.searchsorted(ells, want)
+    q = np.asarray(td.q, float)[::q_stride]
+    total = np.asarray(td.delta_p_l_k[0], float)[idx][:, ::q_stride]
+    tau0 = float(res.tau0)
+    eta_rec = float(res.tau_maxvis)
+    etas = np.concatenate([np.linspace(0.6 * eta_rec, 2.2 * eta_rec, 240),
+                           np.geomspace(2.2 * eta_rec * 1.002, tau0 * 0.9995, 360)])
+    ev = res.get_time_evolution(q, etas, ["T_source"], lAccuracyBoost=1)
+    t_src = ev[:, :, 0] if ev.ndim == 3 else ev
+    # trapezoid weights on the non-uniform grid
+    wq = np.empty_like(etas)
+    d = np.diff(etas)
+    wq[0], wq[-1] = d[0] / 2, d[-1] / 2
+    wq[1:-1] = (d[:-1] + d[1:]) / 2
+    late = etas > ETA_CUT * eta_rec
+    x = q[:, None] * (tau0 - etas[None, :])
+    r_star = tau0 - eta_rec
+    nl = want.size
+    rec = np.empty((nl, q.size))
+    lat = np.empty((nl, q.size))
+    jl_star = np.empty((nl, q.size))
+    djl_star = np.empty((nl, q.size))
+    for i, ell in enumerate(want):
+        jl = spherical_jn(int(ell), x) * wq[None, :]
+        rec[i] = np.sum(t_src[:, ~late] * jl[:, ~late], axis=1)
+        lat[i] = np.sum(t_src[:, late] * jl[:, late], axis=1)
+        jl_star[i] = spherical_jn(int(ell), q * r_star)
+        djl_star[i] = spherical_jn(int(ell), q * r_star, derivative=True)
+    # thin shell at the peak of the visibility: rec_l(q) = A(q) j_l(q r*) + B(q) j_l'(q r*), per q over l
+    mono = np.empty_like(rec)
+    dop = np.empty_like(rec)
+    for k in range(q.size):
+        basis = np.stack([jl_star[:, k], djl_star[:, k]], axis=1)
+        coef, *_ = np.linalg.lstsq(basis, rec[:, k], rcond=None)
+        mono[:, k] = coef[0] * jl_star[:, k]
+        dop[:, k] = coef[1] * djl_star[:, k]
+    resid = rec - mono - dop
+    return dict(q=q, ells=want, total=total, doppler=dop, isw=lat, resid=resid, los_total=rec + lat, a_s=c.a_s,
+                n_s=c.n_s, pivot=c.pivot_mpc, tcmb_uk=c.tcmb * 1e6)
+
+
+def _cl(tr, a, b):
+    q = tr["q"]
+    prim = tr["a_s"] * (q / tr["pivot"]) ** (tr["n_s"] - 1.0)
+    return tr["tcmb_uk"] ** 2 * 4 * np.pi * np.trapezoid(prim * a * b, np.log(q), axis=1)
+
+
+@functools.lru_cache(maxsize=4)
+def _source_split(params, lmax, q_stride):
+    from . import cosmology
+
+    c = cosmology._Defaults(*params)
+    tr = _split_transfers(lmax, c, q_stride)
+    m = tr["total"] - tr["doppler"] - tr["isw"]
+    d, i = tr["doppler"], tr["isw"]
+
+    def pad(v):
+        out = np.zeros(lmax + 1)
+        out[2:] = v
+        return out
+
+    camb_tt = cosmology.isotropic_cl(lmax, c)
+    return SourceSplit(lmax=lmax, total=pad(_cl(tr, tr["total"], tr["total"])), match=pad(_cl(tr, m, m)),
+                       doppler=pad(_cl(tr, d, d)), isw=pad(_cl(tr, i, i)), match_doppler=pad(_cl(tr, m, d)),
+                       match_isw=pad(_cl(tr, m, i)), doppler_isw=pad(_cl(tr, d, i)), camb_total=camb_tt)
+
+
+def source_split(lmax, cosmo=None, q_stride=1) -> SourceSplit:
+    """The matched / unmatched split of CAMB's temperature spectrum for l <= ``lmax`` (cached).
+
+    ``q_stride`` > 1 thins CAMB's q grid (faster, less accurate; tests).
+    """
+    from . import cosmology
+
+    return _source_split(cosmology._params(cosmo), int(lmax), int(q_stride))
+
+
+def los_check(lmax, cosmo=None, q_stride=1):
+    """(CAMB's delta_p_l_k, line-of-sight integral of CAMB's T_source): the integrator's check."""
+    from . import cosmology
+
+    tr = _split_transfers(int(lmax), cosmology._Defaults(*cosmology._params(cosmo)), int(q_stride))
+    return tr["total"], tr["los_total"]
+
+
+# --------------------------------------------------------------------------- geometry of the two views
+def view_angle_cos(alpha_deg) -> float:
+    """cos of the angle between the two lines of sight to a point of a circle of radius alpha: -cos 2 alpha."""
+    return -math.cos(math.radians(2.0 * float(alpha_deg)))
+
+
+def pair_coefficients(lmax, alpha_deg):
+    """Per-l covariance coefficients of the two views: (match, doppler, isw) arrays (l = 0..lmax)."""
+    from scipy.special import eval_legendre
+
+    c = view_angle_cos(alpha_deg)
+    ell = np.arange(lmax + 1)
+    return np.ones(lmax + 1), np.full(lmax + 1, c), eval_legendre(ell, c)
+
+
+def pair_spectrum(split: SourceSplit, alpha_deg) -> np.ndarray:
+    """Covariance spectrum of the two views of a matched circle pair of radius alpha (uK^2, per l)."""
+    rm, rd, ri = pair_coefficients(split.lmax, alpha_deg)
+    return (split.match * rm + split.doppler * rd + split.isw * ri
+            + 2 * split.match_doppler * (rm + rd) / 2 + 2 * split.match_isw * (rm + ri) / 2
+            + 2 * split.doppler_isw * (rd + ri) / 2)
+
+
+def unmatched_fraction(split: SourceSplit, alpha_deg) -> np.ndarray:
+    """1 - pair / total per l: the part of each multipole's power lost to decorrelation at radius alpha."""
+    tot = split.total
+    out = np.zeros_like(tot)
+    ok = tot > 0
+    out[ok] = 1.0 - pair_spectrum(split, alpha_deg)[ok] / tot[ok]
+    return out
+
+
+# --------------------------------------------------------------------------- ring spectra, expected S
+@functools.lru_cache(maxsize=64)
+def _lambda_sq(lmax, alpha_deg):
+    """lambda_lm(cos alpha)^2 for l, m = 0..lmax (array (lmax+1, lmax+1), zero for m > l)."""
+    from scipy.special import sph_harm_y
+
+    th = math.radians(float(alpha_deg))
+    out = np.zeros((lmax + 1, lmax + 1))
+    for ell in range(lmax + 1):
+        m = np.arange(ell + 1)
+        out[ell, : ell + 1] = np.abs(sph_harm_y(ell, m, th, 0.0)) ** 2
+    out.setflags(write=False)
+    return out
+
+
+def ring_weights(lmax, weighting):
+    w = np.arange(lmax + 1, dtype=float) if weighting == "m" else np.ones(lmax + 1)
+    w[0] = 0.0
+    return w
+
+
+def expected_s(split: SourceSplit, alpha_deg, filt=None, bl=None, nl=None, weighting="m"):
+    """(expected S of a true pair, null spread sigma of S) at radius alpha for filter ``filt`` (per l).
+
+    ``bl``: beam window (default 1), ``nl``: noise spectrum (uK^2, default 0).
+    """
+    lmax = split.lmax
+    f2 = np.ones(lmax + 1) if filt is None else np.asarray(filt, float)[: lmax + 1] ** 2
+    b2 = np.ones(lmax + 1) if bl is None else np.asarray(bl, float)[: lmax + 1] ** 2
+    n = np.zeros(lmax + 1) if nl is None else np.asarray(nl, float)[: lmax + 1]
+    lam = _lambda_sq(lmax, float(alpha_deg))
+    wm = ring_weights(lmax, weighting)
+    p_pair = (f2 * b2 * pair_spectrum(split, alpha_deg)) @ lam
+    p_tot = (f2 * (b2 * split.total + n)) @ lam
+    den = np.sum(wm * p_tot)
+    return float(np.sum(wm * p_pair) / den), float(math.sqrt(np.sum(wm ** 2 * p_tot ** 2) / 2.0) / den)
+
+
+def margin(split, alpha_deg, filt=None, bl=None, nl=None, weighting="m") -> float:
+    """Expected S of a true pair over the null spread of S."""
+    s, sig = expected_s(split, alpha_deg, filt, bl, nl, weighting)
+    return s / sig
+
+
+# --------------------------------------------------------------------------- the filter
+def diagonal_optimum(split: SourceSplit, alpha_deg, bl=None, nl=None, lmin=2):
+    """Squared filter weights maximising the margin when every multipole were an independent mode:
+    f_l^2 proportional to C^pair_l / (b_l^2 C_l + N_l)^2 (x b_l^2 for the beam on the signal), >= 0."""
+    lmax = split.lmax
+    b2 = np.ones(lmax + 1) if bl is None else np.asarray(bl, float)[: lmax + 1] ** 2
+    n = np.zeros(lmax + 1) if nl is None else np.asarray(nl, float)[: lmax + 1]
+    tot = b2 * split.total + n
+    x = np.zeros(lmax + 1)
+    ok = (tot > 0) & (np.arange(lmax + 1) >= lmin)
+    x[ok] = np.maximum(b2[ok] * pair_spectrum(split, alpha_deg)[ok], 0.0) / tot[ok] ** 2
+    return x / x.max() if x.max() > 0 else x
+
+
+def optimal_filter(split: SourceSplit, bl=None, nl=None, lmin=2, radii=REF_RADII_DEG):
+    """Per-l filter f_l (max 1, 0 below ``lmin``): f_l^2 the mean over ``radii`` of
+    :func:`diagonal_optimum` (each normalised to max 1).
+
+    One filter serves all radii (prepare makes one set of a_lm).  A numerical optimum of the
+    margin over f_l (ring-mode mixing included) was tried and rejected: it puts all weight on
+    two or three multipoles, where the Gaussian null spread above no longer describes the tail
+    of the maximum over many pairs.
+    """
+    x = np.mean([diagonal_optimum(split, a, bl, nl, lmin) for a in radii], axis=0)
+    if not x.max() > 0:
+        raise ValueError("no multipole carries matched power at the reference radii")
+    return np.sqrt(x / x.max())
+
+
+@functools.lru_cache(maxsize=16)
+def _filter_for(name, lmax, lmin, fwhm_deg):
+    import healpy as hp
+
+    if name == "none":
+        return None
+    split = source_split(lmax)
+    bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else None
+    f = optimal_filter(split, bl=bl, lmin=lmin)
+    f.setflags(write=False)
+    return f
+
+
+def filter_window(prep) -> np.ndarray | None:
+    """The per-l filter ``prepare.filter`` asks for (l = 0..prep.lmax), or None for ``none``.
+
+    Computed for the prepared beam ``prep.fwhm_deg``, no noise, the default cosmology and the
+    reference radii; cached, so every map of a run (data, simulations, injections) gets the same one.
+    """
+    name = getattr(prep, "filter", "none")
+    if name not in FILTERS:
+        raise ValueError(f"unknown filter {name!r}")
+    f = _filter_for(name, int(prep.lmax), int(prep.lmin), float(prep.fwhm_deg))
+    return None if f is None else f.copy()
+
+
+def filter_hash(f) -> str:
+    """Short sha256 of a filter (``none`` for None), for provenance."""
+    if f is None:
+        return "none"
+    return hashlib.sha256(np.round(np.asarray(f, float), 12).tobytes()).hexdigest()[:12]
