@@ -372,8 +372,8 @@ def fig_null(model, peaks, path, dpi=110, thresholds=None):
     best = None
     if peaks is not None and "p_global" in peaks.colnames and len(peaks):
         best = peaks[_most_significant_index(peaks)]
-    zmax = getattr(model, "zmax", None)
-    panels = 2 if zmax is not None and np.any(np.isfinite(zmax)) and best is not None and "z" in peaks.colnames else 1
+    minp = getattr(model, "null_minp", None)
+    panels = 2 if minp is not None and np.any(np.isfinite(minp)) and best is not None else 1
     fig, axes = plt.subplots(1, panels, figsize=(5.6 * panels, 4.4), constrained_layout=True, squeeze=False)
     axes = axes[0]
     # local panel: grid peak S of the simulations at the data's most significant radius and sense
@@ -396,18 +396,22 @@ def fig_null(model, peaks, path, dpi=110, thresholds=None):
     ax.set_title("one radius and sense", fontsize=10)
     ax.legend(fontsize=8, loc="upper left")
     if panels == 2:
+        # the look-elsewhere null actually used: each simulation's smallest local p over all radii and
+        # senses (leave-one-out), against which the data's local p is ranked (min-p method)
         ax = axes[1]
-        z = _hist_empirical(ax, np.asarray(zmax, float), f"{n} simulations (empirical)")
-        zb = float(best["z"])
-        xg = np.linspace(min(z.min(), zb) - 0.5, max(z.max(), zb) + 0.5, 300)
-        fit = getattr(model, "global_fit", None)
-        if fit is not None and getattr(fit, "params", None):
-            ax.plot(xg, fit.pdf(xg), color="C0", ls="--", lw=1.2,
-                    label=f"fitted {fit.kind} tail (descriptive, not used for p)")
-        ax.axvline(zb, color="C3", lw=1.5, label=f"data: z = {zb:.2f}, " + (p_text(best, "p_global", floor, n) or ""))
-        ax.set_xlabel("largest z = (S − mean) / std over all radii and senses")
-        ax.set_title("look-elsewhere: all radii and senses", fontsize=10)
-        ax.legend(fontsize=8, loc="upper left")
+        m = np.asarray(minp, float)
+        m = m[np.isfinite(m)]
+        edges = (np.arange(n + 2) + 0.5) / (n + 1)
+        ax.hist(m, bins=edges, color="0.6", label=f"{n} simulations: smallest local p (empirical)")
+        pl = float(best["p_local"])
+        ax.axvline(pl, color="C3", lw=1.5, label="data: p_local = " + f"{pl:.3g}, "
+                   + (p_text(best, "p_global", floor, n) or ""))
+        ax.set_xscale("log")
+        ax.set_xlim(0.5 / (n + 1), 1.0)
+        ax.set_xlabel("smallest local p over all radii and senses (floor 1/(N+1))")
+        ax.set_ylabel("simulations")
+        ax.set_title("look-elsewhere: all radii and senses (min-p)", fontsize=10)
+        ax.legend(fontsize=8, loc="upper right")
     fig.suptitle(f"Null distribution from {n} isotropic simulations; p-values are empirical, "
                  f"never below 1/(N+1) = {floor:.2g}", fontsize=10)
     return _save(fig, path, dpi)
