@@ -31,6 +31,8 @@ HELP = {
         "mask_threshold": "mask values >= this count as usable pixels",
     },
     "prepare": {
+        "filter": "multipole filter before rings are sampled: none or optimal (matched-power weighting; "
+                  "measured to lower S on full-physics skies, see README)",
         "nside": "HEALPix Nside of the prepared map",
         "fwhm_deg": "FWHM of the Gaussian beam of the prepared map [deg]",
         "input_fwhm_deg": "FWHM of the beam the input map already has [deg]; the prepared beam replaces it",
