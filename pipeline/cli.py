@@ -149,6 +149,9 @@ def main(argv=None) -> int:
     # healpy's OpenMP transforms: one thread unless the user says otherwise, so that results do not
     # depend on the backend's process layout, and a loaded machine is not made to spin-wait
     os.environ.setdefault("OMP_NUM_THREADS", "1")
+    # loky's resource tracker (a child process that shares our stderr) warns about semaphores it
+    # cleans up after a SIGTERM to the whole process group; the one line we print says it all
+    os.environ.setdefault("PYTHONWARNINGS", "ignore::UserWarning:joblib.externals.loky.backend.resource_tracker")
     import signal
 
     from .config import InputError
