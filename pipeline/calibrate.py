@@ -188,13 +188,47 @@ def decouple(pseudo, mask_cl, lmin, lmax):
     return out
 
 
-def data_spectrum(prepared, prep, coupling="master", input_bl=None) -> np.ndarray:
+def input_spectrum_master(sky: SkyMap, prep, lmax):
+    """Full-sky C_l (l = 0..lmax) of the input map as it is (its beam and pixel window included), MASTER-corrected.
+
+    The pseudo-C_l of the masked input at the input Nside (with
+    ``prep.remove_dipole`` the monopole and dipole fitted on the unmasked sky are
+    removed first, as prepare does; that fit also removes the part of l = 2, 3
+    that looks like a dipole on the cut sky, measured as -12 % on C_2 + C_3 for a
+    |b| < 20 deg cut, which no decoupling can restore; what the fit leaves at
+    l = 0, 1 is solved for as C_0 and C_1),
+    decoupled with the exact coupling matrix of the input mask solved on
+    ``0 <= l <= lmax_s`` (``lmax_s = min(3 Nside - 1, 1.5 lmax)``, so that power
+    just above lmax and the residual monopole and dipole are modelled, not
+    aliased into the kept multipoles).  Returns ``(cl, f_sky)``.
+    """
+    mask = (np.asarray(sky.mask) > 0.5).astype(float)
+    nside = int(sky.nside)
+    lmax = int(lmax)
+    lmax_s = max(lmax, min(3 * nside - 1, lmax + max(16, lmax // 2)))
+    if prep.remove_dipole:      # a large monopole/dipole would swamp l >= 2 through the coupling's rounding
+        values, _ = prep_mod.remove_monopole_dipole(sky.values, mask)
+    else:
+        values = np.asarray(sky.values, float) * mask
+    pseudo = hp.anafast(values, lmax=lmax_s, pol=False, iter=3)
+    nhi = _hi_nside(nside, lmax_s)
+    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
+    wl = hp.anafast((mhi > 0.5).astype(float), lmax=2 * lmax_s, pol=False, iter=3)
+    M = coupling_matrix(wl, lmax_s)
+    cl = np.linalg.solve(M, pseudo)
+    return cl[: lmax + 1], float(mask.mean())
+
+
+def data_spectrum(prepared, prep, coupling="master", input_bl=None, sky=None) -> np.ndarray:
     """Sky C_l (uK^2, l = 0..lmax) of the input map (its beam included) from the prepared data.
 
-    ``coupling = "master"`` (default): the pseudo-C_l of the masked prepared map
-    corrected for the mask's mode coupling (MASTER, Hivon et al. 2002; the exact
-    coupling matrix of the prepared mask, unbinned, inverted on
-    ``max(2, lmin) <= l <= lmax``).  ``"fsky"``: the pseudo-C_l divided by f_sky
+    ``coupling = "master"`` (default): with the input ``sky`` given, the pseudo-C_l
+    of the masked input corrected for the mask's mode coupling
+    (:func:`input_spectrum_master`; MASTER, Hivon et al. 2002; the exact,
+    unbinned coupling matrix), then its pixel window divided out when prepare
+    divides it (``prep.input_pixwin``); without ``sky``, the pseudo-C_l of the
+    masked prepared map decoupled on ``max(2, lmin) <= l <= lmax`` (biased low
+    at l = 2, 3 by the monopole and dipole prepare removes).  ``"fsky"``: the pseudo-C_l divided by f_sky
     (mode coupling ignored: biased at low l by power leaking from neighbours).
     Then divided by the window prepare applied (target beam over the input's
     beam, ``input_bl`` when given, else ``prep.input_beam`` / ``input_fwhm_deg``),
@@ -206,6 +240,15 @@ def data_spectrum(prepared, prep, coupling="master", input_bl=None) -> np.ndarra
     if float(np.mean(np.asarray(mask) > 0.5)) <= 0:
         raise InputError("prepared map: no valid pixel; allowed: a map with some valid pixels")
     lo = max(2, int(prep.lmin))
+    if input_bl is None:
+        input_bl = input_beam_window(prep, lmax)
+    if coupling == "master" and sky is not None:
+        est, _ = input_spectrum_master(sky, prep, lmax)
+        if prep.input_pixwin:
+            est = est / prep_mod.pixel_window(int(sky.nside), lmax) ** 2
+        cl = np.zeros(lmax + 1)
+        cl[lo:] = est[lo:]
+        return np.maximum(cl, 0.0)
     if coupling == "fsky":
         fsky = float(np.mean(np.asarray(mask) > 0.5))
         est = hp.anafast(prepared.map * (np.asarray(mask) > 0.5), lmax=lmax, pol=False) / fsky
@@ -217,8 +260,6 @@ def data_spectrum(prepared, prep, coupling="master", input_bl=None) -> np.ndarra
             est = decouple(pseudo, wl, lo, lmax)
     # the window prepare applied (from the input map's beam to the target beam): dividing it out
     # gives the spectrum of the input map, instrument beam included, which prepare then re-applies
-    if input_bl is None:
-        input_bl = input_beam_window(prep, lmax)
     win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, input_bl=input_bl)
     cl = np.zeros(lmax + 1)
     ok = win**2 > 1e-12
@@ -347,7 +388,7 @@ def simulate_sky(ctx: SimContext, index) -> SkyMap:
     lmax = int(ctx.prep.lmax)
     alm = gaussian_alm(ctx.cl, lmax, rng)
     if getattr(ctx.prep, "input_pixwin", False):
-        hp.almxfl(alm, np.asarray(hp.pixwin(int(ctx.nside), lmax=lmax), float)[: lmax + 1], inplace=True)
+        hp.almxfl(alm, prep_mod.pixel_window(int(ctx.nside), lmax), inplace=True)
     m = hp.alm2map(alm, ctx.nside, lmax=lmax, mmax=lmax, pixwin=False)
     if ctx.noise_maps:
         noise = _supplied(ctx, ctx.noise_maps[int(index)], "calibrate.noise_maps noise map")
@@ -637,12 +678,12 @@ def sim_nside_for(cfg, sky_nside) -> int:
     return n
 
 
-def sky_spectrum(cfg, prepared) -> np.ndarray:
+def sky_spectrum(cfg, prepared, sky=None) -> np.ndarray:
     """The simulations' C_l (uK^2): the data's (mode coupling corrected), CAMB's or a file's times the input beam^2."""
     c = cfg.calibrate
     lmax = int(cfg.prepare.lmax)
     if c.spectrum == "data":
-        return data_spectrum(prepared, cfg.prepare, coupling=c.coupling)
+        return data_spectrum(prepared, cfg.prepare, coupling=c.coupling, sky=sky)
     if c.spectrum == "theory":
         cl = theory_spectrum(lmax, cfg.cosmology)
     else:
@@ -736,7 +777,7 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
     else:
         nside = sim_nside_for(cfg, sky.nside)
         n_sims = int(c.simulations)
-        cl = sky_spectrum(cfg, prepared)
+        cl = sky_spectrum(cfg, prepared, sky)
         if noise_maps:
             if len(noise_maps) < n_sims:
                 raise InputError(f"{cfg.source}: calibrate.noise_maps: found {len(noise_maps)} map(s) for "

@@ -16,7 +16,7 @@ Steps of :func:`prepare_map` (input: a :class:`twinring.skymap.SkyMap` in uK, RI
    beam transfer function read from ``input_beam`` (a B_l table, FITS or text,
    :func:`read_beam`; the window may not exceed 1.1 anywhere, so nothing is
    sharpened much).
-   With ``input_pixwin`` the input's HEALPix pixel window (``healpy.pixwin`` at
+   With ``input_pixwin`` the input's HEALPix pixel window (:func:`pixel_window` at
    the input Nside) is divided out too: ``B_in(l) * p_l(Nside_in)``.
 5. High-pass: ``a_lm = 0`` for ``l < lmin``.
 6. No pixel window is applied for the output Nside: the search evaluates rings
@@ -249,6 +249,47 @@ def read_beam_cached(path, lmax) -> np.ndarray:
     return _BEAMS[key].copy()
 
 
+_PIXWIN: dict = {}
+
+
+def pixel_window(nside, lmax, sub=8, n_pix=192) -> np.ndarray:
+    """HEALPix temperature pixel window p_l (l = 0..lmax) of ``nside``.
+
+    ``healpy.pixwin`` when its data file is at hand; else computed from the
+    definition p_l^2 = < (1/Omega^2) int int_pixel P_l(n . n') dn dn' > over pixels
+    (Gorski et al. 2005, ApJ 622, 759, sec. 4.2), each pixel sampled by its
+    ``sub**2`` nested sub-pixel centres and ``n_pix`` pixels spread over all rings.
+    """
+    key = (int(nside), int(lmax))
+    if key in _PIXWIN:
+        return _PIXWIN[key].copy()
+    try:
+        import warnings as _w
+
+        with _w.catch_warnings():
+            _w.simplefilter("ignore")
+            pw = np.asarray(hp.pixwin(int(nside), lmax=int(lmax)), float)[: lmax + 1]
+    except Exception:       # healpy fetches the file from the network when it is not installed
+        npix = hp.nside2npix(int(nside))
+        ring = np.unique(np.linspace(0, npix - 1, min(n_pix, npix)).astype(np.int64))
+        nest = hp.ring2nest(int(nside), ring)
+        k2 = sub * sub
+        kids = (nest[:, None] * k2 + np.arange(k2)[None, :]).ravel()
+        v = np.stack(hp.pix2vec(int(nside) * sub, kids, nest=True), -1).reshape(ring.size, k2, 3)
+        x = np.clip(np.einsum("pia,pja->pij", v, v), -1.0, 1.0)
+        w2 = np.empty(lmax + 1)
+        p0, p1 = np.ones_like(x), x
+        w2[0] = 1.0
+        if lmax >= 1:
+            w2[1] = p1.mean()
+        for l in range(1, lmax):
+            p0, p1 = p1, ((2 * l + 1) * x * p1 - l * p0) / (l + 1)
+            w2[l + 1] = p1.mean()
+        pw = np.sqrt(np.maximum(w2, 0.0))
+    _PIXWIN[key] = pw
+    return pw.copy()
+
+
 def input_window(prep: PrepareSection, lmax, nside_in, input_bl=None) -> np.ndarray:
     """The window the input map already carries (l = 0..lmax): its beam times, if asked, its pixel window."""
     if input_bl is None and prep.input_beam:
@@ -260,8 +301,7 @@ def input_window(prep: PrepareSection, lmax, nside_in, input_bl=None) -> np.ndar
     else:
         w = np.ones(lmax + 1)
     if prep.input_pixwin:
-        pw = np.asarray(hp.pixwin(int(nside_in), lmax=lmax), float)
-        w = w * pw[: lmax + 1]
+        w = w * pixel_window(int(nside_in), lmax)
     return w
 
 

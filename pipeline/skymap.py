@@ -666,12 +666,12 @@ def regrid_variance(var, nside_out):
 
     Degrading averages k = (n_in/n_out)^2 sub-pixels, whose mean has variance
     mean(var)/k; upgrading splits a pixel into k sub-pixels of variance k var
-    (healpy.ud_grade with power = -2).  Pixels of variance 0 stay without noise.
+    (healpy.ud_grade with power = 2).  Pixels of variance 0 stay without noise.
     """
     var = np.asarray(var, float)
     nside_in = hp.npix2nside(var.size)
     if nside_in == nside_out:
         return var
     v = np.where(var > 0, var, hp.UNSEEN)
-    out = hp.ud_grade(v, int(nside_out), power=-2, order_in="RING", order_out="RING")
+    out = hp.ud_grade(v, int(nside_out), power=2, order_in="RING", order_out="RING")  # divides by (n_in/n_out)^2
     return np.where(np.isfinite(out) & (out != hp.UNSEEN) & (out > 0), out, 0.0)
