@@ -96,29 +96,188 @@ def noise_sigma_pixel(noise_uk_arcmin, nside) -> float:
     return float(noise_uk_arcmin) / hp.nside2resol(nside, arcmin=True)
 
 
-def data_spectrum(prepared, prep) -> np.ndarray:
-    """Sky C_l (uK^2, l = 0..lmax) from the prepared data: pseudo-C_l / f_sky / window^2.
+def wigner3j_zero_sq(lmax) -> callable:
+    """A function ``(l1, l2, l3) -> (l1 l2 l3; 0 0 0)^2`` for integer arrays up to ``lmax`` each.
 
-    Multipoles below ``prep.lmin`` (removed by prepare) and where the window is
-    negligible are set to 0.
+    The closed form (e.g. Edmonds 1957, *Angular Momentum in Quantum Mechanics*,
+    eq. 3.7.17): zero unless L = l1 + l2 + l3 is even and the triangle holds;
+    else with g = L/2 it is ``(L-2l1)! (L-2l2)! (L-2l3)! / (L+1)! * [g! / ((g-l1)! (g-l2)! (g-l3)!)]^2``,
+    evaluated with a table of log factorials.
+    """
+    import scipy.special
+
+    lf = scipy.special.gammaln(np.arange(3 * int(lmax) + 3) + 1.0)
+
+    def f(l1, l2, l3):
+        l1, l2, l3 = np.broadcast_arrays(np.asarray(l1), np.asarray(l2), np.asarray(l3))
+        L = l1 + l2 + l3
+        ok = (L % 2 == 0) & (l3 >= np.abs(l1 - l2)) & (l3 <= l1 + l2)
+        g = L // 2
+        Lc = np.where(ok, L, 0)
+        a = np.where(ok, Lc - 2 * l1, 0)
+        b = np.where(ok, Lc - 2 * l2, 0)
+        c = np.where(ok, Lc - 2 * l3, 0)
+        gc = np.where(ok, g, 0)
+        val = (lf[a] + lf[b] + lf[c] - lf[Lc + 1]
+               + 2.0 * (lf[gc] - lf[np.where(ok, gc - l1, 0)] - lf[np.where(ok, gc - l2, 0)]
+                        - lf[np.where(ok, gc - l3, 0)]))
+        return np.where(ok, np.exp(val), 0.0)
+
+    return f
+
+
+def coupling_matrix(mask_cl, lmax) -> np.ndarray:
+    """The pseudo-C_l mode-coupling matrix of a mask (MASTER; Hivon et al. 2002, ApJ 567, 2, eq. A31).
+
+    ``<pseudo C_l1> = sum_l2 M[l1, l2] C_l2`` with
+    ``M[l1, l2] = (2 l2 + 1) / (4 pi) * sum_l3 (2 l3 + 1) W_l3 (l1 l2 l3; 0 0 0)^2``,
+    ``W_l`` the mask's own pseudo-spectrum (``mask_cl``, l = 0..2 lmax; missing
+    entries count as 0).  Returns the (lmax+1, lmax+1) matrix.
+    """
+    lmax = int(lmax)
+    w = np.zeros(2 * lmax + 1)
+    mc = np.asarray(mask_cl, float)[: 2 * lmax + 1]
+    w[: mc.size] = mc
+    w3 = (2 * np.arange(2 * lmax + 1) + 1.0) * w      # (2 l3 + 1) W_l3
+    three = wigner3j_zero_sq(2 * lmax)
+    ell = np.arange(lmax + 1)
+    l3 = np.arange(2 * lmax + 1)
+    M = np.zeros((lmax + 1, lmax + 1))
+    for l1 in range(lmax + 1):
+        sq = three(l1, ell[:, None], l3[None, :])              # (l2, l3)
+        M[l1] = sq @ w3
+    M *= (2 * ell[None, :] + 1.0) / (4.0 * math.pi)
+    return M
+
+
+def _hi_nside(nside, lmax):
+    """Smallest Nside >= ``nside`` (a power of two) with 3 Nside - 1 >= 2 lmax: the mask's W_l to 2 lmax."""
+    n = int(nside)
+    while 3 * n - 1 < 2 * int(lmax):
+        n *= 2
+    return n
+
+
+def pseudo_spectra(prepared):
+    """(pseudo-C_l of the masked prepared map, mask pseudo-spectrum W_l to 2 lmax, f_sky).
+
+    Both are computed at an Nside fine enough for the mask's spectrum to 2 lmax
+    (:func:`_hi_nside`; the prepared mask repeated onto it, so its geometry is
+    unchanged), the map from the prepared a_lm without pixel window.
+    """
+    lmax = int(prepared.lmax)
+    mask = np.asarray(prepared.mask if prepared.mask is not None else np.ones_like(prepared.map), float)
+    mask = (mask > 0.5).astype(float)
+    nside = hp.npix2nside(mask.size)
+    nhi = _hi_nside(nside, lmax)
+    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
+    mhi = (mhi > 0.5).astype(float)
+    fsky = float(mhi.mean())
+    mp = hp.alm2map(prepared.alm, nhi, lmax=lmax, mmax=lmax, pixwin=False) * mhi
+    pseudo = hp.anafast(mp, lmax=lmax, pol=False, iter=3)
+    wl = hp.anafast(mhi, lmax=2 * lmax, pol=False, iter=3)
+    return pseudo, wl, fsky
+
+
+def decouple(pseudo, mask_cl, lmin, lmax):
+    """Full-sky C_l (l = 0..lmax, 0 below ``lmin``) solving ``pseudo = M C`` on lmin <= l <= lmax."""
+    lo = max(int(lmin), 0)
+    M = coupling_matrix(mask_cl, lmax)
+    out = np.zeros(int(lmax) + 1)
+    out[lo:] = np.linalg.solve(M[lo:, lo:], np.asarray(pseudo, float)[lo: int(lmax) + 1])
+    return out
+
+
+def input_spectrum_master(sky: SkyMap, prep, lmax):
+    """Full-sky C_l (l = 0..lmax) of the input map as it is (its beam and pixel window included), MASTER-corrected.
+
+    The pseudo-C_l of the masked input at the input Nside (with
+    ``prep.remove_dipole`` the monopole and dipole fitted on the unmasked sky are
+    removed first, as prepare does; that fit also removes the part of l = 2, 3
+    that looks like a dipole on the cut sky, measured as -12 % on C_2 + C_3 for a
+    |b| < 20 deg cut, which no decoupling can restore; what the fit leaves at
+    l = 0, 1 is solved for as C_0 and C_1),
+    decoupled with the exact coupling matrix of the input mask solved on
+    ``0 <= l <= lmax_s`` (``lmax_s = min(3 Nside - 1, 1.5 lmax)``, so that power
+    just above lmax and the residual monopole and dipole are modelled, not
+    aliased into the kept multipoles).  Returns ``(cl, f_sky)``.
+    """
+    mask = (np.asarray(sky.mask) > 0.5).astype(float)
+    nside = int(sky.nside)
+    lmax = int(lmax)
+    lmax_s = max(lmax, min(3 * nside - 1, lmax + max(16, lmax // 2)))
+    if prep.remove_dipole:      # a large monopole/dipole would swamp l >= 2 through the coupling's rounding
+        values, _ = prep_mod.remove_monopole_dipole(sky.values, mask)
+    else:
+        values = np.asarray(sky.values, float) * mask
+    pseudo = hp.anafast(values, lmax=lmax_s, pol=False, iter=3)
+    nhi = _hi_nside(nside, lmax_s)
+    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
+    wl = hp.anafast((mhi > 0.5).astype(float), lmax=2 * lmax_s, pol=False, iter=3)
+    M = coupling_matrix(wl, lmax_s)
+    cl = np.linalg.solve(M, pseudo)
+    return cl[: lmax + 1], float(mask.mean())
+
+
+def data_spectrum(prepared, prep, coupling="master", input_bl=None, sky=None) -> np.ndarray:
+    """Sky C_l (uK^2, l = 0..lmax) of the input map (its beam included) from the prepared data.
+
+    ``coupling = "master"`` (default): with the input ``sky`` given, the pseudo-C_l
+    of the masked input corrected for the mask's mode coupling
+    (:func:`input_spectrum_master`; MASTER, Hivon et al. 2002; the exact,
+    unbinned coupling matrix), then its pixel window divided out when prepare
+    divides it (``prep.input_pixwin``); without ``sky``, the pseudo-C_l of the
+    masked prepared map decoupled on ``max(2, lmin) <= l <= lmax`` (biased low
+    at l = 2, 3 by the monopole and dipole prepare removes).  ``"fsky"``: the pseudo-C_l divided by f_sky
+    (mode coupling ignored: biased at low l by power leaking from neighbours).
+    Then divided by the window prepare applied (target beam over the input's
+    beam, ``input_bl`` when given, else ``prep.input_beam`` / ``input_fwhm_deg``),
+    so that prepare puts it back.  Multipoles below ``prep.lmin`` and where the
+    window is negligible are 0.  The data's noise is part of this spectrum.
     """
     lmax = int(prepared.lmax)
     mask = prepared.mask if prepared.mask is not None else np.ones_like(prepared.map)
-    fsky = float(np.mean(mask > 0.5))
-    if fsky <= 0:
+    if float(np.mean(np.asarray(mask) > 0.5)) <= 0:
         raise InputError("prepared map: no valid pixel; allowed: a map with some valid pixels")
-    pseudo = hp.anafast(prepared.map * (mask > 0.5), lmax=lmax, pol=False) / fsky
+    lo = max(2, int(prep.lmin))
+    if input_bl is None:
+        input_bl = input_beam_window(prep, lmax)
+    if coupling == "master" and sky is not None:
+        est, _ = input_spectrum_master(sky, prep, lmax)
+        if prep.input_pixwin:
+            est = est / prep_mod.pixel_window(int(sky.nside), lmax) ** 2
+        cl = np.zeros(lmax + 1)
+        cl[lo:] = est[lo:]
+        return np.maximum(cl, 0.0)
+    if coupling == "fsky":
+        fsky = float(np.mean(np.asarray(mask) > 0.5))
+        est = hp.anafast(prepared.map * (np.asarray(mask) > 0.5), lmax=lmax, pol=False) / fsky
+    else:
+        pseudo, wl, fsky = pseudo_spectra(prepared)
+        if fsky >= 1.0 - 1e-12:
+            est = hp.alm2cl(prepared.alm)[: lmax + 1]
+        else:
+            est = decouple(pseudo, wl, lo, lmax)
     # the window prepare applied (from the input map's beam to the target beam): dividing it out
     # gives the spectrum of the input map, instrument beam included, which prepare then re-applies
-    win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, prep.input_fwhm_deg)
+    win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, input_bl=input_bl)
     filt = prep_mod.filter_window(prep)      # prepare's multipole filter, re-applied to every simulation
     if filt is not None:
         win = win * filt
     cl = np.zeros(lmax + 1)
     ok = win**2 > 1e-12
-    cl[ok] = pseudo[ok] / win[ok] ** 2
-    cl[: max(2, int(prep.lmin))] = 0.0
-    return cl
+    cl[ok] = est[ok] / win[ok] ** 2
+    cl[:lo] = 0.0
+    return np.maximum(cl, 0.0)
+
+
+def input_beam_window(prep, lmax) -> np.ndarray:
+    """The input map's beam B_l (l = 0..lmax), without the pixel window: from ``input_beam`` or ``input_fwhm_deg``."""
+    if prep.input_beam:
+        return prep_mod.read_beam_cached(prep.input_beam, lmax)
+    if prep.input_fwhm_deg > 0:
+        return np.asarray(hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=lmax), float)
+    return np.ones(int(lmax) + 1)
 
 
 def theory_spectrum(lmax, cosmo=None) -> np.ndarray:
@@ -178,28 +337,70 @@ class SimContext:
     cl: np.ndarray                 # sky C_l, l = 0..lmax (uK^2)
     nside: int                     # simulation Nside
     mask: np.ndarray | None        # data mask at ``nside`` (1 = use), None for full sky
-    noise_sigma: float             # per-pixel white noise rms (uK)
+    noise_sigma: object            # per-pixel noise rms (uK): a number (white) or an array (one per pixel)
     prep: object                   # PrepareSection
     search: object                 # SearchSection
     listed: object = None          # listed pairs table (family 'listed')
     seed: int = 0
     frame: str | None = None
     key: str = ""                  # identity of the whole setup (cache keys, stored results)
+    maps: tuple = ()               # supplied simulation maps (calibrate.maps): simulation i is maps[i]
+    noise_maps: tuple = ()         # noise maps added to the Gaussian signal skies (calibrate.noise_maps)
+    map_section: object = None     # the data's MapSection (field, mask, threshold) for supplied maps
+    input_bl: np.ndarray | None = None   # the input beam B_l read once from prepare.input_beam
+    n_sims: int = 0                # N: len(maps), else calibrate.simulations
+    noise_text: str = ""           # what noise the simulations get (log, summary, provenance)
+    variance_checksum: str | None = None   # sha256 of calibrate.noise_variance_map
 
 
 def sim_rng(seed, index) -> np.random.Generator:
     return np.random.default_rng(np.random.SeedSequence(int(seed), spawn_key=(int(index),)))
 
 
+def _supplied(ctx: SimContext, path, what):
+    """A supplied map (simulation or noise) read like the data: same field, the data mask applied."""
+    from .skymap import load_map
+
+    m = ctx.map_section
+    sky = load_map(path, field=m.field if m is not None else 0, mask_path=m.mask if m is not None else None,
+                   mask_field=m.mask_field if m is not None else 0,
+                   mask_threshold=m.mask_threshold if m is not None else 0.5,
+                   allow_polarisation=bool(m.allow_polarisation) if m is not None else False)
+    if sky.nside != int(ctx.nside):
+        raise InputError(f"{path}: {what} has Nside {sky.nside}; allowed: the simulations' Nside {ctx.nside} "
+                         "(the data map's, or calibrate.sim_nside)")
+    return sky
+
+
 def simulate_sky(ctx: SimContext, index) -> SkyMap:
-    """Simulated input map i (uK, RING, masked) as a SkyMap for :func:`twinring.prepare.prepare_map`."""
+    """Simulated input map i (uK, RING, masked) as a SkyMap for :func:`twinring.prepare.prepare_map`.
+
+    Supplied simulations (``ctx.maps``) are read like the data (field, unit,
+    ordering, the data's mask and the data's own invalid pixels).  Gaussian
+    skies get the input's pixel window when prepare divides it out
+    (``prepare.input_pixwin``), then noise: noise map i (``ctx.noise_maps``)
+    or ``noise_sigma`` (white, or one rms per pixel) times a standard normal.
+    """
+    mask = np.ones(hp.nside2npix(int(ctx.nside))) if ctx.mask is None else np.asarray(ctx.mask, float)
+    if ctx.maps:
+        sky = _supplied(ctx, ctx.maps[int(index)], "calibrate.maps simulation")
+        use = np.asarray(sky.mask, float) * mask
+        return SkyMap(values=sky.values * use, mask=use, nside=sky.nside, unit_in=sky.unit_in, frame=ctx.frame,
+                      checksum=sky.checksum, notes=[], path=str(ctx.maps[int(index)]))
     rng = sim_rng(ctx.seed, index)
     lmax = int(ctx.prep.lmax)
     alm = gaussian_alm(ctx.cl, lmax, rng)
+    if getattr(ctx.prep, "input_pixwin", False):
+        hp.almxfl(alm, prep_mod.pixel_window(int(ctx.nside), lmax), inplace=True)
     m = hp.alm2map(alm, ctx.nside, lmax=lmax, mmax=lmax, pixwin=False)
-    if ctx.noise_sigma > 0:
-        m = m + ctx.noise_sigma * rng.standard_normal(m.size)
-    mask = np.ones(m.size) if ctx.mask is None else np.asarray(ctx.mask, float)
+    if ctx.noise_maps:
+        noise = _supplied(ctx, ctx.noise_maps[int(index)], "calibrate.noise_maps noise map")
+        m = m + noise.values
+        mask = mask * noise.mask
+    else:
+        sigma = np.asarray(ctx.noise_sigma, float)
+        if np.any(sigma > 0):
+            m = m + sigma * rng.standard_normal(m.size)
     return SkyMap(values=m * mask, mask=mask, nside=int(ctx.nside), unit_in="uK", frame=ctx.frame,
                   checksum="", notes=[], path=f"simulation {int(index)}")
 
@@ -216,7 +417,7 @@ def grid_peaks(prepared, scfg, listed=None, key="", compute=None):
 def null_peaks(ctx: SimContext, index) -> np.ndarray:
     """Work unit: grid peaks (n_radii, 2) of simulation ``index``."""
     sky = simulate_sky(ctx, index)
-    prepared = prep_mod.prepare_map(sky, ctx.prep)
+    prepared = prep_mod.prepare_map(sky, ctx.prep, input_bl=ctx.input_bl)
     _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}")
     return np.asarray(pool.peak_s, float)
 
@@ -480,42 +681,176 @@ def sim_nside_for(cfg, sky_nside) -> int:
     return n
 
 
-def sky_spectrum(cfg, prepared) -> np.ndarray:
+def sky_spectrum(cfg, prepared, sky=None) -> np.ndarray:
+    """The simulations' C_l (uK^2): the data's (mode coupling corrected), CAMB's or a file's times the input beam^2."""
     c = cfg.calibrate
     lmax = int(cfg.prepare.lmax)
     if c.spectrum == "data":
-        return data_spectrum(prepared, cfg.prepare)
+        return data_spectrum(prepared, cfg.prepare, coupling=c.coupling, sky=sky)
     if c.spectrum == "theory":
         cl = theory_spectrum(lmax, cfg.cosmology)
     else:
         cl = file_spectrum(c.spectrum_file, lmax)
     cl = np.asarray(cl, float)[: lmax + 1].copy()
-    if cfg.prepare.input_fwhm_deg > 0:   # sky spectra seen through the input map's own beam
-        cl *= hp.gauss_beam(math.radians(cfg.prepare.input_fwhm_deg), lmax=lmax)[: cl.size] ** 2
+    # sky spectra seen through the input map's own beam (its pixel window is added to each simulated map)
+    cl *= input_beam_window(cfg.prepare, lmax)[: cl.size] ** 2
     return cl
+
+
+_GLOB_CHARS = set("*?[")
+
+
+def expand_paths(patterns, key) -> list:
+    """Files of a glob or list (already relative to the config): sorted per pattern, each once, all existing."""
+    import glob
+
+    out = []
+    for pat in patterns or ():
+        if _GLOB_CHARS & set(str(pat)):
+            hits = sorted(glob.glob(str(pat)))
+            if not hits:
+                raise InputError(f"{pat}: {key}: the pattern matches no file; allowed: a glob matching HEALPix FITS "
+                                 "maps, or a list of files")
+            out.extend(hits)
+        else:
+            if not Path(pat).is_file():
+                raise InputError(f"{pat}: {key}: file not found; allowed: existing HEALPix FITS maps")
+            out.append(str(pat))
+    seen, uniq = set(), []
+    for p in out:
+        r = str(Path(p).resolve())
+        if r not in seen:
+            seen.add(r)
+            uniq.append(p)
+    return uniq
+
+
+def files_digest(paths) -> tuple:
+    """(sha256 checksums of the files, one sha256 of them all in order): provenance of supplied maps."""
+    from .results import file_checksum
+
+    sums = [file_checksum(p) for p in paths]
+    return sums, hashlib.sha256("\n".join(sums).encode()).hexdigest()[:16]
+
+
+def noise_for(cfg, nside):
+    """Per-pixel noise rms of the Gaussian simulations at ``nside`` and a statement of it.
+
+    Returns ``(sigma, text, variance_checksum)``: ``sigma`` a number (white
+    noise of ``calibrate.noise_uk_arcmin``) or an array (``calibrate.noise_variance_map``,
+    variance or hit counts, regridded to ``nside`` with the pixel-area scaling).
+    """
+    c = cfg.calibrate
+    if c.noise_variance_map:
+        from .results import file_checksum
+        from .skymap import load_noise_variance, regrid_variance
+
+        var, vn, notes = load_noise_variance(c.noise_variance_map, c.noise_variance_field, c.noise_per_hit_uk)
+        var = regrid_variance(var, nside)
+        sigma = np.sqrt(var)
+        seen = sigma > 0
+        text = (f"inhomogeneous noise from {Path(c.noise_variance_map).name} (Nside {vn}"
+                f"{', regridded to ' + str(nside) if vn != nside else ''}): per-pixel rms median "
+                f"{float(np.median(sigma[seen])):.4g} uK, range {float(sigma[seen].min()):.4g}-"
+                f"{float(sigma[seen].max()):.4g} uK")
+        return sigma, "; ".join(notes[-1:] + [text]), file_checksum(c.noise_variance_map)
+    sigma = noise_sigma_pixel(c.noise_uk_arcmin, nside)
+    return sigma, (f"white noise {c.noise_uk_arcmin:g} uK-arcmin = {sigma:.4g} uK per pixel at Nside {nside}"
+                   if c.noise_uk_arcmin > 0 else "no noise added to the simulations"), None
 
 
 def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
     """The simulation context for the config, the data SkyMap and its prepared version."""
-    nside = sim_nside_for(cfg, sky.nside)
-    cl = sky_spectrum(cfg, prepared)
+    c = cfg.calibrate
+    maps = expand_paths(c.maps, "calibrate.maps") if c.maps else []
+    noise_maps = expand_paths(c.noise_maps, "calibrate.noise_maps") if c.noise_maps else []
+    data_path = str(Path(sky.path).resolve()) if sky.path else None
+    for p in maps + noise_maps:
+        if data_path and str(Path(p).resolve()) == data_path:
+            raise InputError(f"{p}: calibrate.maps / noise_maps includes the data map itself; allowed: simulations "
+                             "independent of the data")
+    if maps:
+        if len(maps) < 2:
+            raise InputError(f"{cfg.source}: calibrate.maps: found {len(maps)} map; allowed: at least 2 simulation "
+                             "maps (N = their count; p is never below 1/(N + 1))")
+        nside = int(sky.nside)                 # processed exactly like the data
+        n_sims = len(maps)
+        cl = np.zeros(int(cfg.prepare.lmax) + 1)
+        sigma, noise_text, var_sum = 0.0, "supplied simulation maps carry their own noise", None
+    else:
+        nside = sim_nside_for(cfg, sky.nside)
+        n_sims = int(c.simulations)
+        cl = sky_spectrum(cfg, prepared, sky)
+        if noise_maps:
+            if len(noise_maps) < n_sims:
+                raise InputError(f"{cfg.source}: calibrate.noise_maps: found {len(noise_maps)} map(s) for "
+                                 f"{n_sims} simulations; allowed: at least calibrate.simulations noise maps "
+                                 "(simulation i gets noise map i)")
+            noise_maps = noise_maps[:n_sims]
+            sigma, noise_text, var_sum = 0.0, f"{n_sims} supplied noise maps added to the Gaussian skies", None
+        else:
+            sigma, noise_text, var_sum = noise_for(cfg, nside)
     mask = None
     if np.any(sky.mask <= 0.5):
         mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
-    sigma = noise_sigma_pixel(cfg.calibrate.noise_uk_arcmin, nside)
+    input_bl = prep_mod.read_beam_cached(cfg.prepare.input_beam, int(cfg.prepare.lmax)) if cfg.prepare.input_beam \
+        else None
     h = hashlib.sha256()
     # everything that changes a simulation's grid peaks (not search.top / refine / suppression)
     grid = {k: v for k, v in dataclasses.asdict(cfg.search).items() if k not in NOT_IN_PEAKS}
     h.update(repr((dataclasses.asdict(cfg.prepare), sorted(grid.items()))).encode())
-    h.update(repr((cfg.calibrate.seed, cfg.calibrate.spectrum, nside, sigma)).encode())
+    sig_key = float(sigma) if np.ndim(sigma) == 0 else hashlib.sha256(np.ascontiguousarray(sigma).tobytes()).hexdigest()
+    h.update(repr((c.seed, c.spectrum, nside, sig_key)).encode())
+    if c.spectrum == "data" and c.coupling != "master":
+        h.update(repr(c.coupling).encode())
     h.update(np.ascontiguousarray(cl).tobytes())
+    if maps or noise_maps:
+        h.update(repr((files_digest(maps)[1] if maps else "", files_digest(noise_maps)[1] if noise_maps else "",
+                       cfg.map.field, cfg.map.mask_field, cfg.map.mask_threshold)).encode())
+    if input_bl is not None:
+        h.update(np.ascontiguousarray(input_bl).tobytes())
     if mask is not None:
         h.update(np.packbits(mask > 0.5).tobytes())
     if listed is not None:
-        for c in ("lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg"):
-            h.update(np.asarray(listed[c], float).tobytes())
-    return SimContext(cl=cl, nside=nside, mask=mask, noise_sigma=sigma, prep=cfg.prepare, search=cfg.search,
-                      listed=listed, seed=int(cfg.calibrate.seed), frame=sky.frame, key=h.hexdigest()[:16])
+        for col in ("lon1_deg", "lat1_deg", "lon2_deg", "lat2_deg"):
+            h.update(np.asarray(listed[col], float).tobytes())
+    ctx = SimContext(cl=cl, nside=nside, mask=mask, noise_sigma=sigma, prep=cfg.prepare, search=cfg.search,
+                     listed=listed, seed=int(c.seed), frame=sky.frame, key=h.hexdigest()[:16], maps=tuple(maps),
+                     noise_maps=tuple(noise_maps), map_section=cfg.map, input_bl=input_bl, n_sims=n_sims,
+                     noise_text=noise_text, variance_checksum=var_sum)
+    return ctx
+
+
+def noise_statement(cfg, ctx: SimContext) -> list:
+    """Log and summary lines: the noise the simulations really get, and the noise inside a 'data' spectrum."""
+    c = cfg.calibrate
+    lines = [f"simulation noise: {ctx.noise_text}"]
+    if not ctx.maps and c.spectrum == "data":
+        lines.append("spectrum 'data' is the data map's own spectrum and already contains the data's noise "
+                     "(its noise is part of the Gaussian skies)")
+        if c.noise_uk_arcmin > 0 or c.noise_variance_map or ctx.noise_maps:
+            lines.append("warning: noise is added on top of spectrum 'data', which already contains the data's "
+                         "noise: the simulations are noisier than the data (use spectrum 'theory' or 'file' with "
+                         "added noise, or no added noise with 'data')")
+    return lines
+
+
+def sims_provenance(ctx: SimContext) -> dict:
+    """Provenance of supplied simulation and noise maps (count, checksums) and of a noise variance map."""
+    out = {}
+    if ctx.maps:
+        sums, allsum = files_digest(ctx.maps)
+        out.update(sim_maps_count=len(ctx.maps), sim_maps_sha256=allsum, sim_maps_checksums=sums,
+                   sim_maps_first=str(ctx.maps[0]))
+    if ctx.noise_maps:
+        sums, allsum = files_digest(ctx.noise_maps)
+        out.update(noise_maps_count=len(ctx.noise_maps), noise_maps_sha256=allsum, noise_maps_checksums=sums,
+                   noise_maps_first=str(ctx.noise_maps[0]))
+    if ctx.variance_checksum:
+        out["sha256_noise_variance_map"] = ctx.variance_checksum
+    out["simulation_noise"] = ctx.noise_text
+    out["null_kind"] = "supplied simulation maps" if ctx.maps else "isotropic Gaussian skies"
+    return out
 
 
 SIM_TAG = "sims"
@@ -546,7 +881,7 @@ def calibrate_shard(cfg, run, sky, prepared, shard):
     from .inputs import listed_pairs
 
     ctx = make_context(cfg, sky, prepared, listed_pairs(cfg))
-    n = int(cfg.calibrate.simulations)
+    n = int(ctx.n_sims)
     peaks = run_simulations(ctx, n, compute=cfg.compute, store_dir=run.dir, progress=run.progress,
                             log=run.log, shard=shard)
     mine = [int(u) for u in shard_units(list(range(n)), shard)]
@@ -604,12 +939,12 @@ def merge_calibration_shards(dirs, out, force=False):
 
 def load_data(cfg):
     """The data SkyMap and its prepared version."""
-    from .skymap import load_map
+    from .skymap import load_config_map
 
     m = cfg.map
     if not m.path:
         raise InputError(f"{cfg.source or '<config>'}: map.path: found null; allowed: a HEALPix FITS file path")
-    sky = load_map(m.path, field=m.field, mask_path=m.mask, mask_field=m.mask_field, mask_threshold=m.mask_threshold)
+    sky = load_config_map(m)
     return sky, prep_mod.prepare_map(sky, cfg.prepare)
 
 
@@ -634,22 +969,34 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
         sky, prepared = load_data(cfg)
     listed = listed_pairs(cfg)
     ctx = make_context(cfg, sky, prepared, listed)
-    if c.spectrum == "data" and c.noise_uk_arcmin > 0:
-        run.log("note: spectrum 'data' already contains the data's noise; calibrate.noise_uk_arcmin adds more")
-    run.log(f"{c.simulations} simulations at Nside {ctx.nside}, spectrum {c.spectrum}, noise "
-            f"{c.noise_uk_arcmin} uK-arcmin, seed {c.seed} (setup {ctx.key})")
+    noise_lines = noise_statement(cfg, ctx)
+    for line in noise_lines:
+        run.log(line)
+    if ctx.maps:
+        run.log(f"{ctx.n_sims} supplied simulation maps (calibrate.maps; N = their count, calibrate.simulations "
+                f"not used) at Nside {ctx.nside}, masked, prepared and searched like the data (setup {ctx.key})")
+        if c.sim_nside:
+            run.log("note: calibrate.sim_nside is not used with calibrate.maps (they are read at their own Nside)")
+    else:
+        spec = c.spectrum + (f" ({'mode coupling corrected' if c.coupling == 'master' else 'f_sky rescaled'})"
+                             if c.spectrum == "data" else "")
+        run.log(f"{ctx.n_sims} Gaussian simulations at Nside {ctx.nside}, spectrum {spec}, seed {c.seed} "
+                f"(setup {ctx.key})")
     t0 = time.time()
-    peaks = run_simulations(ctx, c.simulations, compute=cfg.compute, store_dir=run.dir, progress=run.progress,
+    peaks = run_simulations(ctx, ctx.n_sims, compute=cfg.compute, store_dir=run.dir, progress=run.progress,
                             log=run.log)
     dt = time.time() - t0
     model = NullModel(np.asarray(cfg.search.radii_deg(), float), peaks, tail=c.tail)
     inputs = dict(input_files(cfg), spectrum=c.spectrum_file if c.spectrum == "file" else None)
     meta = provenance(cfg, inputs, "calibrate")
-    meta.update(model.meta(c.false_alarm), spectrum=c.spectrum, sim_nside=ctx.nside,
-                noise_uk_arcmin=c.noise_uk_arcmin, seed=c.seed, setup=ctx.key)
+    meta.update(model.meta(c.false_alarm), spectrum="none (supplied maps)" if ctx.maps else c.spectrum,
+                sim_nside=ctx.nside, noise_uk_arcmin=c.noise_uk_arcmin, seed=c.seed, setup=ctx.key,
+                spectrum_coupling=c.coupling if c.spectrum == "data" and not ctx.maps else "",
+                **sims_provenance(ctx))
     write_table(model.thresholds_table(c.false_alarm), run.dir / THRESHOLDS, meta)
     write_table(model.null_table(), run.dir / NULL_PEAKS, meta)
-    lines = [f"{model.n_sims} simulations in {dt:.1f} s ({dt / max(1, model.n_sims):.2f} s each)"]
+    kind = "supplied simulation maps" if ctx.maps else "simulations"
+    lines = [f"{model.n_sims} {kind} in {dt:.1f} s ({dt / max(1, model.n_sims):.2f} s each)"] + noise_lines
     lines += resolution_lines(model.n_sims, tuple(c.false_alarm) + (c.significance,))
     usable = [a for a in c.false_alarm if model.resolvable(a)]
     if usable:
@@ -673,6 +1020,7 @@ def calibrate_run(cfg, run, sky=None, prepared=None):
         out = annotate(t, model, col, level=c.significance)
         m = dict(t.meta)
         m.update({f"calibration_{k}": v for k, v in provenance(cfg, None, "calibrate").items()},
+                 **{f"calibration_{k}": v for k, v in sims_provenance(ctx).items()},
                  calibration_n_sims=model.n_sims, p_floor=model.p_floor, significance_level=c.significance,
                  significance_resolved=level_ok,
                  ranking="p_global, then z, then grid S" if name == "candidates.ecsv" else "radius, sense")

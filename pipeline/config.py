@@ -42,10 +42,13 @@ def is_pow2(n: int) -> bool:
 @dataclass(frozen=True)
 class MapSection:
     path: str | None = _f(None, "path?")
-    field: int = _f(0, "int", min=0)
+    # a 0-based column index or a column name (TTYPE: I_STOKES, TEMPERATURE, ...)
+    field: int | str = _f(0, "field")
     mask: str | None = _f(None, "path?")
     mask_field: int = _f(0, "int", min=0)
     mask_threshold: float = _f(0.5, "float", min=0.0, max=1.0, open_min=True)
+    # a column whose TTYPE says polarisation (Q_STOKES, U_POLARISATION, ...) is refused unless true
+    allow_polarisation: bool = _f(False, "bool")
 
     def check(self, where):
         pass
@@ -61,12 +64,20 @@ class PrepareSection:
     remove_dipole: bool = _f(True, "bool")
     iterations: int = _f(3, "int", min=0, max=10)
     filter: str = _f("none", "str", choices=("none", "optimal"))
+    # the input map's beam as a B_l table (FITS or text; instead of input_fwhm_deg)
+    input_beam: str | None = _f(None, "path?")
+    # divide the input map's HEALPix pixel window (healpy.pixwin at its Nside) out of its a_lm
+    input_pixwin: bool = _f(False, "bool")
+    # widen the mask by this many prepare.fwhm_deg at the prepared Nside before the search (0: not widened)
+    mask_widen_fwhm: float = _f(0.0, "float", min=0.0, max=10.0)
 
     def check(self, where):
         if self.lmax > 3 * self.nside - 1:
             raise where("lmax", self.lmax, f"at most 3*nside-1 = {3 * self.nside - 1} for nside {self.nside}")
         if self.lmin >= self.lmax:
             raise where("lmin", self.lmin, f"below lmax = {self.lmax}")
+        if self.input_beam and self.input_fwhm_deg > 0:
+            raise where("input_fwhm_deg", self.input_fwhm_deg, "0 when prepare.input_beam (a B_l table) is given")
         if self.input_fwhm_deg > self.fwhm_deg:
             raise where("input_fwhm_deg", self.input_fwhm_deg,
                         f"at most fwhm_deg = {self.fwhm_deg} (the prepared beam; nothing is sharpened)")
@@ -222,8 +233,28 @@ class CalibrateSection:
     noise_uk_arcmin: float = _f(0.0, "float", min=0.0)
     tail: str = _f("gumbel", "str", choices=("gumbel", "genextreme"))
     sim_nside: int = _f(0, "int", min=0, max=8192)
+    # supplied simulation maps (a glob or a list, relative to the config): N is their count, replacing
+    # ``simulations``; each is masked, prepared and searched exactly like the data
+    maps: tuple | None = _f(None, "paths?")
+    # noise maps (a glob or a list) added one per Gaussian signal sky (simulation i gets noise map i)
+    noise_maps: tuple | None = _f(None, "paths?")
+    # per-pixel noise variance (uK^2 after the TUNIT conversion), or hit counts with noise_per_hit_uk
+    noise_variance_map: str | None = _f(None, "path?")
+    noise_variance_field: int | str = _f(0, "field")
+    noise_per_hit_uk: float | None = _f(None, "float?", min=0.0, open_min=True)
+    # the data spectrum: mask mode coupling corrected (MASTER) or the f_sky rescaling of old
+    coupling: str = _f("master", "str", choices=("master", "fsky"))
 
     def check(self, where):
+        if self.maps and self.noise_maps:
+            raise where("noise_maps", list(self.noise_maps), "null when calibrate.maps (complete simulations) is given")
+        if self.maps and (self.noise_variance_map or self.noise_uk_arcmin > 0):
+            raise where("maps", list(self.maps), "no noise_variance_map or noise_uk_arcmin beside it (supplied "
+                        "simulations carry their own noise)")
+        if self.noise_per_hit_uk is not None and not self.noise_variance_map:
+            raise where("noise_per_hit_uk", self.noise_per_hit_uk, "null unless noise_variance_map holds hit counts")
+        if self.noise_variance_map and self.noise_uk_arcmin > 0:
+            raise where("noise_uk_arcmin", self.noise_uk_arcmin, "0 when noise_variance_map is given")
         if not self.false_alarm or not all(0.0 < a < 1.0 for a in self.false_alarm):
             raise where("false_alarm", list(self.false_alarm), "a list of rates, each in (0, 1)")
         if self.spectrum == "file" and not self.spectrum_file:
@@ -434,6 +465,22 @@ def _coerce(source, keypath, value, meta, base_dir):
         if not isinstance(value, (list, tuple)) or not all(isinstance(x, str) and x for x in value):
             raise bad("a list of names")
         return tuple(value)
+    if kind == "field":
+        if isinstance(value, bool) or not isinstance(value, (int, str)) or (isinstance(value, int) and value < 0) \
+                or (isinstance(value, str) and not value.strip()):
+            raise bad("a column index >= 0 or a column name (e.g. I_STOKES, TEMPERATURE)")
+        return value
+    if kind == "paths":
+        items = [value] if isinstance(value, str) else value
+        if not isinstance(items, (list, tuple)) or not items or not all(isinstance(x, str) and x for x in items):
+            raise bad("a file pattern (glob) or a list of file paths")
+        out = []
+        for x in items:
+            q = Path(x).expanduser()
+            if not q.is_absolute() and base_dir is not None:
+                q = base_dir / q
+            out.append(str(q))
+        return tuple(out)
     if kind == "any":
         return value
     raise TypeError(f"unknown field kind {kind}")

@@ -235,8 +235,9 @@ def injected_sky(ctx: InjectContext, isize, irep):
     if ctx.beam_fwhm_deg > 0:
         alm = hp.almxfl(alm, hp.gauss_beam(math.radians(ctx.beam_fwhm_deg), lmax=ctx.recipe.lmax))
     m = hp.alm2map(alm, ctx.nside, lmax=ctx.recipe.lmax, mmax=ctx.recipe.lmax, pixwin=False)
-    if ctx.noise_sigma > 0:
-        m = m + ctx.noise_sigma * r_noise.standard_normal(m.size)
+    sigma = np.asarray(ctx.noise_sigma, float)     # white (a number) or per pixel (calibrate.noise_variance_map)
+    if np.any(sigma > 0):
+        m = m + sigma * r_noise.standard_normal(m.size)
     mask = np.ones(m.size) if ctx.mask is None else np.asarray(ctx.mask, float)
     sky = SkyMap(values=m * mask, mask=mask, nside=int(ctx.nside), unit_in="uK", frame=None, checksum="",
                  notes=[], path=f"injection {isize}/{irep}")
@@ -440,9 +441,13 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
                     for ir in range(radii.size)])
     noise, beam = instrument(cfg)
     sigma = noise_sigma_pixel(noise, nside)
+    if cfg.calibrate.noise_variance_map and cfg.inject.noise_uk_arcmin is None:
+        from .calibrate import noise_for          # the data's per-pixel noise, as in the calibration
+        sigma = noise_for(cfg, nside)[0]
+    sig_key = float(sigma) if np.ndim(sigma) == 0 else hashlib.sha256(np.ascontiguousarray(sigma).tobytes()).hexdigest()
     h = hashlib.sha256()
     h.update(cfg.section_hash("prepare", "search", "inject", "cosmology").encode())
-    h.update(repr((shape, tuple(sizes), recipe, nside, sigma, beam)).encode())
+    h.update(repr((shape, tuple(sizes), recipe, nside, sig_key, beam)).encode())
     h.update(np.ascontiguousarray(thr).tobytes())
     if mask is not None:
         h.update(np.packbits(mask > 0.5).tobytes())

@@ -10,20 +10,26 @@ Steps of :func:`prepare_map` (input: a :class:`twinring.skymap.SkyMap` in uK, RI
    Jacobi iterations and healpy's bundled ring weights when they exist for the
    input Nside.  (Pixel weights would need a download; they are not used.)
 4. Bring the map to a Gaussian beam of ``fwhm_deg`` in total: multiply by
-   ``gauss_beam(fwhm_deg) / gauss_beam(input_fwhm_deg)``, where ``input_fwhm_deg``
-   is the Gaussian beam the map already has (0, the default, takes the input as
-   unsmoothed; it must not exceed ``fwhm_deg``, so nothing is sharpened).
+   ``gauss_beam(fwhm_deg) / B_in(l)``, where ``B_in`` is the beam the map already
+   has: a Gaussian of ``input_fwhm_deg`` (0, the default, takes the input as
+   unsmoothed; it must not exceed ``fwhm_deg``, so nothing is sharpened) or a
+   beam transfer function read from ``input_beam`` (a B_l table, FITS or text,
+   :func:`read_beam`; the window may not exceed 1.1 anywhere, so nothing is
+   sharpened much).
+   With ``input_pixwin`` the input's HEALPix pixel window (:func:`pixel_window` at
+   the input Nside) is divided out too: ``B_in(l) * p_l(Nside_in)``.
 5. High-pass: ``a_lm = 0`` for ``l < lmin``.
-6. No pixel window is applied or removed, either for the input or for the output
-   Nside: the search evaluates rings from the ``alm`` at exact positions, so the
-   output map is only a picture of those ``alm`` (``healpy.alm2map``, no pixwin).
+6. No pixel window is applied for the output Nside: the search evaluates rings
+   from the ``alm`` at exact positions, so the output map is only a picture of
+   those ``alm`` (``healpy.alm2map``, no pixwin).
 7. Mask at the output Nside: ``healpy.ud_grade`` of the 0/1 input mask, then a
    pixel is valid only if at least 99 % of its sub-pixels were (threshold 0.99;
    for an upgrade the mask is simply repeated).
-
-The mask is *not* widened by the beam: the smoothing spreads the zeroed masked
-region into valid pixels within about one ``fwhm_deg`` of the mask edge.  If that
-matters, widen the mask before the run (or choose a smaller ``fwhm_deg``).
+8. With ``mask_widen_fwhm`` = k > 0 every valid pixel whose centre lies within
+   k * ``fwhm_deg`` of a masked pixel's centre is masked too
+   (:func:`widen_mask`): the smoothing spreads the zeroed masked region into
+   valid pixels within about one ``fwhm_deg`` of the mask edge.  With k = 0 (the
+   default) the mask is not widened and a note says so.
 
 Memory: for an Nside 2048 input (50 M pixels) the input map and mask, one cleaned
 copy and healpy's working arrays for ``map2alm`` are held at once (about 4 x 0.4 GB).
@@ -130,15 +136,206 @@ def remove_monopole_dipole(values, mask, nest=False, nthreads=1):
     return cleaned, coeffs
 
 
-def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_fwhm_deg=0.0):
-    """Window ``b_l`` (l = 0..lmax): from a Gaussian beam of ``input_fwhm_deg`` to one of ``fwhm_deg``,
-    times a cut below ``lmin``."""
+def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_fwhm_deg=0.0, input_bl=None):
+    """Window ``b_l`` (l = 0..lmax): from the input's beam to a Gaussian of ``fwhm_deg``, times a cut below ``lmin``.
+
+    The input's beam is ``input_bl`` (B_l for l = 0..lmax, pixel window included
+    if wanted) when given, else a Gaussian of ``input_fwhm_deg`` (none when 0).
+    """
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else np.ones(lmax + 1)
     bl = np.array(bl, dtype=np.float64)
-    if input_fwhm_deg > 0:
+    if input_bl is not None:
+        bl /= np.asarray(input_bl, float)[: lmax + 1]
+    elif input_fwhm_deg > 0:
         bl /= hp.gauss_beam(math.radians(input_fwhm_deg), lmax=lmax)
     bl[: max(0, min(lmin, lmax + 1))] = 0.0
     return bl
+
+
+MAX_SHARPEN = 1.1       # largest allowed target / input window (the prepared beam may not sharpen the input)
+
+
+def read_beam(path, lmax) -> np.ndarray:
+    """A beam transfer function B_l (l = 0..lmax) from a FITS table or a text file.
+
+    FITS: the first binary table; a column named ``l``/``ell`` gives the
+    multipoles, the B_l column is the first of ``B_l``, ``BL``, ``B``, ``BEAM``,
+    ``INT_BEAM``, ``TEMPERATURE``, ``T``, ``TT`` (else the first other column);
+    an image HDU with one row of B_l works too.  Text (numpy.loadtxt): one column
+    (B_l for l = 0, 1, ...) or two (l, B_l).  B_l must be finite and > 0 for
+    l <= lmax and normalised (B_0 within 5 % of 1; it is rescaled to exactly 1).
+    """
+    p = Path(path)
+    what = "prepare.input_beam"
+    if not p.exists() or p.is_dir():
+        raise InputError(f"{p}: {what} file not found; allowed: a B_l table (FITS or text)")
+    ell = None
+    try:
+        with open(p, "rb") as fh:
+            head = fh.read(9)
+    except OSError as exc:
+        raise InputError(f"{p}: {what} cannot be read ({exc.strerror or exc}); allowed: a readable B_l table")
+    if head.startswith(b"SIMPLE  ="):
+        from astropy.io import fits
+
+        try:
+            with fits.open(p, memmap=False) as hdul:
+                tab = next((h for h in hdul[1:] if isinstance(h, (fits.BinTableHDU, fits.TableHDU))), None)
+                if tab is not None:
+                    names = list(tab.columns.names)
+                    up = {n.upper(): n for n in names}
+                    lk = next((up[k] for k in ("L", "ELL", "MULTIPOLE") if k in up), None)
+                    bk = next((up[k] for k in ("B_L", "BL", "B", "BEAM", "INT_BEAM", "TEMPERATURE", "T", "TT",
+                                               "BEAM_WF", "WINDOW") if k in up), None)
+                    if bk is None:
+                        rest = [n for n in names if n != lk]
+                        bk = rest[0] if rest else None
+                    if bk is None:
+                        raise ValueError("no B_l column")
+                    bl = np.asarray(tab.data[bk], float).reshape(-1)
+                    if lk is not None:
+                        ell = np.asarray(tab.data[lk], float).reshape(-1)
+                else:
+                    img = next((h for h in hdul if h.data is not None), None)
+                    if img is None:
+                        raise ValueError("no data")
+                    bl = np.asarray(img.data, float).reshape(-1)
+        except InputError:
+            raise
+        except Exception as exc:
+            raise InputError(f"{p}: {what} is not a readable B_l FITS table ({exc.__class__.__name__}: "
+                             f"{' '.join(str(exc).split())}); allowed: a FITS table with a B_l column")
+    else:
+        try:
+            arr = np.loadtxt(p, ndmin=2)
+        except Exception as exc:
+            raise InputError(f"{p}: {what} is not a numeric text table ({exc.__class__.__name__}); "
+                             "allowed: one column B_l (l = 0, 1, ...) or two columns l, B_l")
+        if arr.shape[1] == 1:
+            bl = arr[:, 0]
+        elif arr.shape[1] == 2:
+            ell, bl = arr[:, 0], arr[:, 1]
+        else:
+            raise InputError(f"{p}: {what} has {arr.shape[1]} columns; allowed: one column B_l or two columns l, B_l")
+    if ell is not None:
+        full = np.full(int(max(lmax, np.max(ell))) + 1, np.nan)
+        li = np.round(ell).astype(int)
+        ok = li >= 0
+        full[li[ok]] = bl[ok]
+        bl = full
+    if bl.size < lmax + 1 or not np.all(np.isfinite(bl[: lmax + 1])):
+        have = int(np.argmin(np.isfinite(np.append(bl, np.nan)))) - 1
+        raise InputError(f"{p}: {what} gives B_l up to l = {max(have, -1)} only; allowed: every l from 0 to "
+                         f"prepare.lmax = {lmax}")
+    bl = np.array(bl[: lmax + 1], float)
+    if np.any(bl <= 0):
+        l0 = int(np.flatnonzero(bl <= 0)[0])
+        raise InputError(f"{p}: {what} has B_l = {bl[l0]:.3g} at l = {l0}; allowed: B_l > 0 up to prepare.lmax")
+    if abs(bl[0] - 1.0) > 0.05:
+        raise InputError(f"{p}: {what} has B_0 = {bl[0]:.4g}; allowed: a transfer function normalised to B_0 = 1")
+    return bl / bl[0]
+
+
+_BEAMS: dict = {}
+
+
+def read_beam_cached(path, lmax) -> np.ndarray:
+    """:func:`read_beam`, kept per (file, size, modification time, lmax): every simulation reuses one read."""
+    st = Path(path).stat() if Path(path).exists() else None
+    key = (str(path), int(lmax), None if st is None else (st.st_size, st.st_mtime_ns))
+    if key not in _BEAMS:
+        if len(_BEAMS) > 8:
+            _BEAMS.clear()
+        _BEAMS[key] = read_beam(path, lmax)
+    return _BEAMS[key].copy()
+
+
+_PIXWIN: dict = {}
+
+
+def pixel_window(nside, lmax, sub=8, n_pix=192) -> np.ndarray:
+    """HEALPix temperature pixel window p_l (l = 0..lmax) of ``nside``.
+
+    ``healpy.pixwin`` when its data file is at hand; else computed from the
+    definition p_l^2 = < (1/Omega^2) int int_pixel P_l(n . n') dn dn' > over pixels
+    (Gorski et al. 2005, ApJ 622, 759, sec. 4.2), each pixel sampled by its
+    ``sub**2`` nested sub-pixel centres and ``n_pix`` pixels spread over all rings.
+    """
+    key = (int(nside), int(lmax))
+    if key in _PIXWIN:
+        return _PIXWIN[key].copy()
+    try:
+        import warnings as _w
+
+        with _w.catch_warnings():
+            _w.simplefilter("ignore")
+            pw = np.asarray(hp.pixwin(int(nside), lmax=int(lmax)), float)[: lmax + 1]
+    except Exception:       # healpy fetches the file from the network when it is not installed
+        npix = hp.nside2npix(int(nside))
+        ring = np.unique(np.linspace(0, npix - 1, min(n_pix, npix)).astype(np.int64))
+        nest = hp.ring2nest(int(nside), ring)
+        k2 = sub * sub
+        kids = (nest[:, None] * k2 + np.arange(k2)[None, :]).ravel()
+        v = np.stack(hp.pix2vec(int(nside) * sub, kids, nest=True), -1).reshape(ring.size, k2, 3)
+        x = np.clip(np.einsum("pia,pja->pij", v, v), -1.0, 1.0)
+        w2 = np.empty(lmax + 1)
+        p0, p1 = np.ones_like(x), x
+        w2[0] = 1.0
+        if lmax >= 1:
+            w2[1] = p1.mean()
+        for l in range(1, lmax):
+            p0, p1 = p1, ((2 * l + 1) * x * p1 - l * p0) / (l + 1)
+            w2[l + 1] = p1.mean()
+        pw = np.sqrt(np.maximum(w2, 0.0))
+    _PIXWIN[key] = pw
+    return pw.copy()
+
+
+def input_window(prep: PrepareSection, lmax, nside_in, input_bl=None) -> np.ndarray:
+    """The window the input map already carries (l = 0..lmax): its beam times, if asked, its pixel window."""
+    if input_bl is None and prep.input_beam:
+        input_bl = read_beam_cached(prep.input_beam, lmax)
+    if input_bl is not None:
+        w = np.array(input_bl, float)[: lmax + 1]
+    elif prep.input_fwhm_deg > 0:
+        w = np.array(hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=lmax), float)
+    else:
+        w = np.ones(lmax + 1)
+    if prep.input_pixwin:
+        w = w * pixel_window(int(nside_in), lmax)
+    return w
+
+
+def check_sharpening(src, prep: PrepareSection, win_in):
+    """Refuse a target beam that would amplify the input (target / input window above MAX_SHARPEN)."""
+    lmax = win_in.size - 1
+    tgt = hp.gauss_beam(math.radians(prep.fwhm_deg), lmax=lmax) if prep.fwhm_deg > 0 else np.ones(lmax + 1)
+    sl = slice(max(prep.lmin, 0), lmax + 1)
+    ratio = tgt[sl] / win_in[sl]
+    if ratio.size and np.max(ratio) > MAX_SHARPEN:
+        l0 = int(np.argmax(ratio)) + sl.start
+        what = "prepare.input_beam" if prep.input_beam else "prepare.input_pixwin"
+        raise InputError(f"{src}: {what}: the prepared beam of fwhm {prep.fwhm_deg} deg would amplify the input by "
+                         f"{float(np.max(ratio)):.3g} at l = {l0}; allowed: prepare.fwhm_deg wider than the input's "
+                         f"beam and pixel (target / input window <= {MAX_SHARPEN})")
+
+
+def widen_mask(mask, radius_deg):
+    """0/1 mask with every valid pixel within ``radius_deg`` (centre to centre) of a masked pixel masked too."""
+    mask = (np.asarray(mask) > 0.5)
+    if radius_deg <= 0 or mask.all() or not mask.any():
+        return mask.astype(np.float64)
+    nside = hp.npix2nside(mask.size)
+    masked = np.flatnonzero(~mask)
+    nb = hp.get_all_neighbours(nside, masked)            # (8, n), -1 where a neighbour does not exist
+    nbv = np.where(nb >= 0, mask[np.maximum(nb, 0)], False)
+    edge = masked[np.any(nbv, axis=0)]                     # masked pixels touching valid ones
+    out = mask.copy()
+    vec = np.stack(hp.pix2vec(nside, edge), axis=-1)
+    r = math.radians(radius_deg)
+    for v in vec:
+        out[hp.query_disc(nside, v, r, inclusive=False)] = False
+    return out.astype(np.float64)
 
 
 def regrid_mask(mask, nside_out, keep=MASK_KEEP):
@@ -214,8 +411,11 @@ def apply_filter(alm, prep: PrepareSection) -> list:
     return [f"multipole filter {prep.filter} applied (sha256 {filter_hash(f)})"]
 
 
-def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepared:
+def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1, input_bl=None) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
+
+    ``input_bl``: the input beam B_l (l = 0..lmax) already read from ``prep.input_beam``
+    (read here when None and the key is set).
 
     ``nthreads`` is used for the pixel geometry (ducc0); healpy's transforms
     use OpenMP and follow ``OMP_NUM_THREADS``.
@@ -249,14 +449,36 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1) -> Prepare
     else:
         cleaned = sky.values * (sky.mask > 0)
 
+    if prep.mask_widen_fwhm > 0 and np.any(mask_out <= 0.5):
+        before = float(np.mean(mask_out > 0.5))
+        mask_out = widen_mask(mask_out, prep.mask_widen_fwhm * prep.fwhm_deg)
+        after = float(np.mean(mask_out > 0.5))
+        if not mask_out.any():
+            raise InputError(f"{src}: prepare.mask_widen_fwhm: found {prep.mask_widen_fwhm}; widening the mask by "
+                             f"{prep.mask_widen_fwhm * prep.fwhm_deg:g} deg leaves no valid pixel; allowed: a "
+                             "smaller value (or a smaller prepare.fwhm_deg)")
+        notes.append(f"mask widened by {prep.mask_widen_fwhm:g} x fwhm = {prep.mask_widen_fwhm * prep.fwhm_deg:g} deg "
+                     f"at Nside {prep.nside}: usable sky {100 * before:.1f}% -> {100 * after:.1f}%")
+    elif np.any(mask_out <= 0.5):
+        notes.append(f"mask not widened (prepare.mask_widen_fwhm 0): the {prep.fwhm_deg:g} deg smoothing mixes the "
+                     "zeroed masked sky into valid pixels near the mask edge")
+
+    win_in = input_window(prep, lmax, nside_in, input_bl)
+    check_sharpening(src, prep, win_in)
+
     alm, weighted = map_to_alm(cleaned, lmax, prep.iterations)
     del cleaned
     notes.append(f"map2alm at lmax {lmax} from Nside {nside_in}, {prep.iterations} iteration(s)"
                  + (", ring weights" if weighted else ", no ring weights"))
-    bl = beam_and_highpass(lmax, prep.fwhm_deg, prep.lmin, prep.input_fwhm_deg)
+    bl = beam_and_highpass(lmax, prep.fwhm_deg, prep.lmin, input_bl=win_in)
     hp.almxfl(alm, bl, inplace=True)
-    notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg in total (input beam {prep.input_fwhm_deg} deg); "
-                 f"l < {prep.lmin} removed")
+    if prep.input_beam:
+        beam_in = f"input beam B_l from {Path(prep.input_beam).name}"
+    else:
+        beam_in = f"input beam {prep.input_fwhm_deg} deg"
+    pix_in = (f", input pixel window of Nside {nside_in} divided out" if prep.input_pixwin
+              else ", input pixel window not removed (prepare.input_pixwin false)")
+    notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg in total ({beam_in}{pix_in}); l < {prep.lmin} removed")
     notes += apply_filter(alm, prep)
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
@@ -330,8 +552,9 @@ def load_and_prepare(cfg, nthreads: int | None = None) -> Prepared:
     m = cfg.map
     if not m.path:
         raise InputError(f"{cfg.source or '<config>'}: map.path: found null; allowed: a HEALPix FITS file path")
-    sky = load_map(m.path, field=m.field, mask_path=m.mask, mask_field=m.mask_field,
-                   mask_threshold=m.mask_threshold)
+    from .skymap import load_config_map
+
+    sky = load_config_map(m)
     if nthreads is None:
         nthreads = getattr(cfg.compute, "threads", 0) or 1
     return prepare_map(sky, cfg.prepare, nthreads=nthreads)

@@ -85,11 +85,22 @@ def provenance(cfg=None, inputs=None, stage: str = "") -> dict:
     if cfg is not None:
         meta["config_hash"] = cfg.hash()
         meta["config_file"] = cfg.source
+        meta.update(_map_description(cfg))
     for name, p in (inputs or {}).items():
         if p is not None and Path(p).exists():
             meta[f"input_{name}"] = str(p)
             meta[f"sha256_{name}"] = file_checksum(p)
     return meta
+
+
+def _map_description(cfg) -> dict:
+    """The data map's unit, ordering, frame and column as read from its header (twinring.skymap)."""
+    from .skymap import input_provenance
+
+    try:
+        return input_provenance(cfg.map)
+    except InputError:          # a bad map stops its stage with its own message; provenance never does
+        return {}
 
 
 def write_table(table: Table, path, meta: dict | None = None, fits_twin: bool = True):

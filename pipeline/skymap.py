@@ -2,8 +2,13 @@
 
 Reading (:func:`load_map`)
     * The map is the first binary-table extension of a FITS file; the column is
-      chosen by ``field`` (0-based; the ``PIXEL`` column of a cut-sky file is not
-      counted).  Only that one column is read, through astropy's memory map, and
+      chosen by ``field``: a 0-based index (the ``PIXEL`` column of a cut-sky file
+      is not counted) or a column name (``TTYPEn``, case-insensitive; a
+      temperature name such as ``I_STOKES``, ``TEMPERATURE``, ``T`` or ``I`` also
+      finds the one temperature column under another of these names).
+    * A column whose name says polarisation (``Q_STOKES``, ``U_POLARISATION``,
+      ``Q``, ``E``, ``B``, ...) is refused as a temperature map unless
+      ``allow_polarisation`` (``map.allow_polarisation``) is given.  Only that one column is read, through astropy's memory map, and
       converted to float64 once, so an Nside 2048 map (50 M pixels) costs about
       0.4 GB for the values plus 0.4 GB for the mask.
     * ``ORDERING`` RING or NESTED (NESTED is converted with ``healpy.reorder``);
@@ -12,7 +17,11 @@ Reading (:func:`load_map`)
       ``PIXTYPE = 'HEALPIX'``) the pixel count must be 12 n^2 with n a power of two.
     * ``TUNITn`` of the column: K, mK, uK (with or without a ``_CMB`` suffix;
       thermodynamic CMB temperature) are converted to uK.  No unit: uK is assumed
-      and a note says so.  Other units (e.g. Rayleigh-Jeans K_RJ, MJy/sr) are refused.
+      and a note says so.  Other units (e.g. Rayleigh-Jeans brightness temperature
+      K_RJ, MJy/sr) are refused: convert them to thermodynamic K_CMB first.
+    * What was read (unit, ordering, frame, column) is kept on the
+      :class:`SkyMap` and, through :func:`input_provenance`, written into every
+      output's provenance.
     * UNSEEN (``healpy.UNSEEN``), NaN and +-inf pixels become masked.
     * Cut-sky files (``INDXSCHM = 'EXPLICIT'``, a ``PIXEL`` column) are read too;
       pixels not listed are masked.
@@ -61,6 +70,9 @@ UNIT_TO_UK = {
 }
 NO_UNIT = {"", "none", "unknown", "n/a", "na"}
 ALLOWED_UNITS = "K, mK, uK (thermodynamic; also written K_CMB, mK_CMB, uK_CMB), or no unit (uK assumed)"
+TEMPERATURE_NAMES = ("TEMPERATURE", "I_STOKES", "I", "T", "TEMP", "INTENSITY", "I_STOKES_INT", "TT")
+POL_HINT = ("a temperature column (I_STOKES, TEMPERATURE, ...), or map.allow_polarisation: true to search "
+            "a polarisation column on purpose")
 
 FRAMES = {
     "G": "G", "GAL": "G", "GALACTIC": "G",
@@ -87,6 +99,9 @@ class SkyMap:
     path: str = ""
     mask_path: str | None = None
     mask_checksum: str | None = None
+    column: str = ""            # TTYPE of the column read
+    field: int = 0              # its 0-based index among the map columns
+    ordering: str = "RING"      # the file's ORDERING (the values are always RING)
 
     @property
     def npix(self) -> int:
@@ -124,6 +139,53 @@ def normalise_unit(unit):
     if key not in UNIT_TO_UK:
         raise KeyError(u)
     return UNIT_TO_UK[key]
+
+
+def is_polarisation_name(name) -> bool:
+    """True when a column name (TTYPE) says polarisation: Q_STOKES, U_POLARISATION, Q, U, E, B, P, POL...
+
+    Healpix/Planck conventions (common practice, no source): I, Q, U maps are
+    written as ``I_STOKES, Q_STOKES, U_STOKES`` or ``TEMPERATURE, Q_POLARISATION,
+    U_POLARISATION``.
+    """
+    n = str(name or "").strip().upper()
+    if not n:
+        return False
+    if "POLARI" in n or n.startswith("POL"):
+        return True
+    head = n.replace("-", "_").replace(" ", "_").split("_")[0]
+    return head in ("Q", "U", "E", "B", "P", "QQ", "UU", "QU", "EE", "BB", "EB", "TE", "TB")
+
+
+def unit_hint(unit) -> str:
+    """Extra words for a refused unit (brightness temperature, intensity)."""
+    u = str(unit or "").lower()
+    if "rj" in u or "brightness" in u or "ant" in u:
+        return " (Rayleigh-Jeans brightness temperature: convert to thermodynamic K_CMB first)"
+    if "jy" in u or "w/" in u or "mjy" in u:
+        return " (an intensity unit: convert to thermodynamic K_CMB first)"
+    return ""
+
+
+def resolve_field(path, names, field):
+    """0-based index among ``names`` (the map columns) of ``field``: an index or a column name."""
+    listed = ", ".join(f"{i}={n}" for i, n in enumerate(names))
+    if isinstance(field, str) and not field.strip().lstrip("-").isdigit():
+        want = field.strip().upper()
+        upper = [str(n).strip().upper() for n in names]
+        if want in upper:
+            return upper.index(want)
+        if want in TEMPERATURE_NAMES:
+            hits = [i for i, n in enumerate(upper) if n in TEMPERATURE_NAMES]
+            if len(hits) == 1:
+                return hits[0]
+        raise _bad(path, f"field {field!r} requested but the table's map columns are {listed}",
+                   "a column name listed or an index 0 to " + str(len(names) - 1))
+    idx = int(field)
+    if idx < 0 or idx >= len(names):
+        raise _bad(path, f"field {idx} requested but the table has {len(names)} map column(s) ({listed})",
+                   f"field 0 to {len(names) - 1}")
+    return idx
 
 
 def normalise_frame(value):
@@ -219,10 +281,7 @@ def _read_column(path, what, field_index):
             data_cols = list(range(len(names)))
         if not data_cols:
             raise _bad(p, f"{what} table has no data column", "a HEALPix binary table with at least one map column")
-        if field_index < 0 or field_index >= len(data_cols):
-            listed = ", ".join(f"{i}={names[c]}" for i, c in enumerate(data_cols))
-            raise _bad(p, f"field {field_index} requested but the table has {len(data_cols)} map column(s) ({listed})",
-                       f"field 0 to {len(data_cols) - 1}")
+        field_index = resolve_field(p, [names[c] for c in data_cols], field_index)
         ci = data_cols[field_index]
         col = cols[ci]
         unit = col.unit
@@ -312,7 +371,7 @@ def _read_column(path, what, field_index):
             notes.append(f"{p.name}: NESTED ordering converted to RING")
 
         info = dict(nside=nside, unit=unit, frame=normalise_frame(coordsys), coordsys_raw=coordsys,
-                    column=col.name, notes=notes, nest=nest)
+                    column=col.name, notes=notes, nest=nest, field=field_index)
         return values, valid, info
     finally:
         hdul.close()
@@ -328,13 +387,21 @@ def _bad_pixels(values):
 
 
 # --------------------------------------------------------------------------- public: load
-def load_map(path, field=0, mask_path=None, mask_field=0, mask_threshold=0.5) -> SkyMap:
-    """Read a HEALPix temperature map (and optional mask) into a :class:`SkyMap` in uK, RING order."""
+def load_map(path, field=0, mask_path=None, mask_field=0, mask_threshold=0.5, allow_polarisation=False) -> SkyMap:
+    """Read a HEALPix temperature map (and optional mask) into a :class:`SkyMap` in uK, RING order.
+
+    ``field``: column index or name.  A polarisation column (by its TTYPE) is
+    refused unless ``allow_polarisation``.
+    """
     p = Path(path)
     if not (0.0 < float(mask_threshold) <= 1.0):
         raise InputError(f"map.mask_threshold: found {mask_threshold}; allowed: a number > 0 and <= 1")
-    values, valid, info = _read_column(p, "map", int(field))
+    _check_temperature_column(p, field, allow_polarisation)
+    values, valid, info = _read_column(p, "map", field)
     notes = list(info["notes"])
+    if allow_polarisation and is_polarisation_name(info["column"]):
+        notes.append(f"{p.name}: column {info['column']!r} is polarisation, searched on request "
+                     "(map.allow_polarisation)")
     nside = info["nside"]
 
     # --- units
@@ -342,7 +409,8 @@ def load_map(path, field=0, mask_path=None, mask_field=0, mask_threshold=0.5) ->
     try:
         factor = normalise_unit(unit)
     except KeyError:
-        raise _bad(p, f"unit {str(unit).strip()!r} (TUNIT of column {info['column']!r})", ALLOWED_UNITS)
+        raise _bad(p, f"unit {str(unit).strip()!r} (TUNIT of column {info['column']!r}){unit_hint(unit)}",
+                   ALLOWED_UNITS)
     if factor is None:
         factor = 1.0
         notes.append(f"{p.name}: column {info['column']!r} has no unit; uK assumed")
@@ -405,7 +473,73 @@ def load_map(path, field=0, mask_path=None, mask_field=0, mask_threshold=0.5) ->
         log.info(n)
     return SkyMap(values=values, mask=mask, nside=nside, unit_in=None if unit is None else str(unit).strip(),
                   frame=frame, checksum=file_checksum(p), notes=notes, path=str(p),
-                  mask_path=None if mask_path is None else str(mask_path), mask_checksum=mask_checksum)
+                  mask_path=None if mask_path is None else str(mask_path), mask_checksum=mask_checksum,
+                  column=str(info["column"]), field=int(info["field"]), ordering="NESTED" if info["nest"] else "RING")
+
+
+def load_config_map(m, path=None) -> SkyMap:
+    """:func:`load_map` with the keys of a ``map`` config section (``path`` overrides ``m.path``)."""
+    return load_map(path or m.path, field=m.field, mask_path=m.mask, mask_field=m.mask_field,
+                    mask_threshold=m.mask_threshold, allow_polarisation=m.allow_polarisation)
+
+
+# --------------------------------------------------------------------------- public: what the input is
+def header_info(path, field=0) -> dict:
+    """Unit, ordering, frame and column of a map file from its header alone (no pixel is read)."""
+    p = Path(path)
+    hdul, table = _open_table(p, "map")
+    try:
+        hdr, prim = table.header, hdul[0].header
+
+        def key(name):
+            return hdr[name] if name in hdr else prim.get(name)
+
+        names = list(table.columns.names)
+        explicit = str(key("INDXSCHM") or "").strip().upper() == "EXPLICIT"
+        data = [n for n in names if not (explicit and n.upper() == "PIXEL")]
+        if not data:
+            raise _bad(p, "map table has no data column", "a HEALPix binary table with at least one map column")
+        i = resolve_field(p, data, field)
+        col = table.columns[data[i]]
+        unit = col.unit
+        ordering = str(key("ORDERING") or "").strip().upper() or "RING (no ORDERING keyword)"
+        frame = normalise_frame(key("COORDSYS"))
+        return {"column": str(col.name), "field": i, "unit": None if unit is None else str(unit).strip(),
+                "ordering": ordering, "frame": frame, "nside": key("NSIDE")}
+    finally:
+        hdul.close()
+
+
+def _check_temperature_column(p, field, allow_polarisation):
+    if allow_polarisation:
+        return
+    info = header_info(p, field)
+    if is_polarisation_name(info["column"]):
+        raise _bad(p, f"field {field!r} is column {info['column']!r}, a polarisation map, requested as temperature",
+                   POL_HINT)
+
+
+def unit_text(unit) -> str:
+    """The input unit as recorded: the TUNIT string, or a statement that none was given."""
+    return "none given (uK assumed)" if unit is None or not str(unit).strip() else str(unit).strip()
+
+
+def input_provenance(map_section) -> dict:
+    """Provenance keys describing the data map as read: unit, ordering, frame, column (header only)."""
+    m = map_section
+    if not getattr(m, "path", None) or not Path(m.path).exists():
+        return {}
+    info = header_info(m.path, m.field)
+    try:
+        factor = normalise_unit(info["unit"])
+    except KeyError:
+        factor = None
+    return {"map_unit": unit_text(info["unit"]),
+            "map_unit_to_uK": 1.0 if factor is None else float(factor),
+            "map_ordering": info["ordering"],
+            "map_frame": info["frame"] or "not declared (no COORDSYS)",
+            "map_field": f"{info['field']} ({info['column']})",
+            "map_polarisation_allowed": bool(getattr(m, "allow_polarisation", False))}
 
 
 # --------------------------------------------------------------------------- public: write
@@ -457,3 +591,87 @@ def write_map(path, maps_uK, *, extra_header=None, provenance=None, column_names
                      column_units=list(units) if len(maps) > 1 else units[0], extra_header=cards,
                      overwrite=True)
     return path
+
+
+# --------------------------------------------------------------------------- public: noise variance
+def variance_factor(unit):
+    """Factor to uK^2 of a variance unit (K_CMB^2, mK^2, uK^2, ...); None for no unit; KeyError if not a square."""
+    if unit is None:
+        return None
+    u = str(unit).strip()
+    key = u.replace(" ", "").replace("(", "").replace(")", "")
+    if key.lower() in NO_UNIT:
+        return None
+    for sq in ("^2", "**2", "2"):
+        if key.endswith(sq):
+            f = normalise_unit(key[: -len(sq)])
+            if f is None:
+                raise KeyError(u)
+            return f * f
+    raise KeyError(u)
+
+
+def load_noise_variance(path, field=0, per_hit_uk=None):
+    """Per-pixel noise variance (uK^2, RING) from a HEALPix file, with its Nside and notes.
+
+    Without ``per_hit_uk`` the column is a variance (TUNIT K_CMB^2, mK^2, uK^2 or
+    none: uK^2 assumed).  With it the column holds hit counts and the variance is
+    ``per_hit_uk**2 / hits``.  Pixels with no finite positive variance (or no hits)
+    get variance 0 (no noise) and a note counts them.
+    """
+    p = Path(path)
+    values, valid, info = _read_column(p, "noise variance", field)
+    notes = list(info["notes"])
+    bad = _bad_pixels(values)
+    if valid is not None:
+        bad |= ~valid
+    if per_hit_uk is not None:
+        hits = np.where(bad, 0.0, values)
+        if np.any(hits < 0):
+            raise _bad(p, f"negative hit count {float(hits.min()):g} in column {info['column']!r}",
+                       "hit counts >= 0 (calibrate.noise_per_hit_uk given)")
+        var = np.zeros_like(hits)
+        seen = hits > 0
+        var[seen] = float(per_hit_uk) ** 2 / hits[seen]
+        what = f"hit counts x {per_hit_uk:g} uK per hit"
+    else:
+        unit = info["unit"]
+        try:
+            factor = variance_factor(unit)
+        except KeyError:
+            raise _bad(p, f"unit {str(unit).strip()!r} (TUNIT of column {info['column']!r}) is not a temperature "
+                       "squared", "K_CMB^2, mK_CMB^2, uK^2 (or no unit: uK^2 assumed), or calibrate.noise_per_hit_uk "
+                       "for hit counts")
+        if factor is None:
+            factor = 1.0
+            notes.append(f"{p.name}: noise variance column {info['column']!r} has no unit; uK^2 assumed")
+        if np.any(values[~bad] < 0):
+            raise _bad(p, f"negative noise variance in column {info['column']!r}", "variances >= 0")
+        var = np.where(bad, 0.0, values) * factor
+        seen = var > 0
+        what = f"variance column {info['column']!r}"
+    if not np.any(seen):
+        raise _bad(p, f"no pixel with a positive noise variance in column {info['column']!r}",
+                   "a noise variance (or hit count) map with positive values")
+    n0 = int(np.sum(~seen))
+    if n0:
+        notes.append(f"{p.name}: {n0} pixel(s) without variance or hits get no simulated noise")
+    notes.append(f"{p.name}: per-pixel noise from {what}, Nside {info['nside']}, median rms "
+                 f"{float(np.sqrt(np.median(var[seen]))):.4g} uK")
+    return var, int(info["nside"]), notes
+
+
+def regrid_variance(var, nside_out):
+    """White-noise variance at another Nside: the pixel-area scaling var * (Nside_out / Nside_in)^2.
+
+    Degrading averages k = (n_in/n_out)^2 sub-pixels, whose mean has variance
+    mean(var)/k; upgrading splits a pixel into k sub-pixels of variance k var
+    (healpy.ud_grade with power = 2).  Pixels of variance 0 stay without noise.
+    """
+    var = np.asarray(var, float)
+    nside_in = hp.npix2nside(var.size)
+    if nside_in == nside_out:
+        return var
+    v = np.where(var > 0, var, hp.UNSEEN)
+    out = hp.ud_grade(v, int(nside_out), power=2, order_in="RING", order_out="RING")  # divides by (n_in/n_out)^2
+    return np.where(np.isfinite(out) & (out != hp.UNSEEN) & (out > 0), out, 0.0)

@@ -197,12 +197,10 @@ def _prepared(cfg, run, state):
 
 
 def _data_sky(cfg, state):
-    from .skymap import load_map
+    from .skymap import load_config_map
 
     if state.sky is None:
-        m = cfg.map
-        state.sky = load_map(m.path, field=m.field, mask_path=m.mask, mask_field=m.mask_field,
-                             mask_threshold=m.mask_threshold)
+        state.sky = load_config_map(cfg.map)
     return state.sky
 
 
