@@ -24,6 +24,7 @@ MISSING_HELP = "(no help yet)"
 # one line per key: what it does, with units
 HELP = {
     "map": {
+        "allow_polarisation": "accept a Q/U/E/B column as the map (refused as temperature unless true)",
         "path": "HEALPix FITS map to search (temperature; unit read from TUNIT); null for a synthetic sky",
         "field": "column (field) of the map file to read, 0 = the first",
         "mask": "HEALPix FITS mask, 1 = use and 0 = masked; null = no mask",
@@ -31,6 +32,9 @@ HELP = {
         "mask_threshold": "mask values >= this count as usable pixels",
     },
     "prepare": {
+        "input_beam": "the input map's beam as a B_l table (FITS or text), instead of input_fwhm_deg",
+        "input_pixwin": "divide the input map's HEALPix pixel window out of its a_lm (true for survey maps)",
+        "mask_widen_fwhm": "widen the mask by this many prepare.fwhm_deg before the search; 0 = not widened",
         "filter": "multipole filter before rings are sampled: none or optimal (matched-power weighting; "
                   "measured to lower S on full-physics skies, see README)",
         "nside": "HEALPix Nside of the prepared map",
@@ -107,6 +111,12 @@ HELP = {
         "omega_k": "curvature density Omega_k; negative: spherical space (sets R = c / (H0 sqrt|Omega_k|))",
     },
     "calibrate": {
+        "maps": "supplied simulation maps (glob or list, relative to the config); N = their count",
+        "noise_maps": "noise maps added one per Gaussian simulation (glob or list)",
+        "noise_variance_map": "per-pixel noise variance [uK^2], or hit counts with noise_per_hit_uk",
+        "noise_variance_field": "column of noise_variance_map to read",
+        "noise_per_hit_uk": "noise of one hit [uK] when noise_variance_map holds hit counts",
+        "coupling": "data spectrum: master (mask mode coupling corrected) or fsky (1/f_sky rescaling)",
         "simulations": "number N of isotropic Gaussian simulations (p-values are floored at 1/(N+1))",
         "spectrum": "power spectrum of the simulations: data (measured), theory (CAMB) or file",
         "spectrum_file": "table of l and C_l [uK^2] for spectrum file",
