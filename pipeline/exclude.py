@@ -530,6 +530,12 @@ def spaces_for(cfg):
 
 def check_exclude(cfg):
     """Checks that need no work (before any output is written)."""
+    from .exclude_spherical import check_spherical, wants_spherical
+
+    if wants_spherical(cfg):
+        check_spherical(cfg)
+        if not cfg.exclude.spaces:
+            return
     for name in spaces_for(cfg):
         if name not in SPACES:
             raise InputError(f"{cfg.source}: topology.space: found {name!r}; allowed: E1-E17 for exclude "
@@ -546,6 +552,11 @@ def exclude_run(cfg, run):
     ex = cfg.exclude
     a_min, a_src = alpha_min_for(cfg, run.dir)
     cov = coverage_for(cfg, a_min)
+    from .exclude_spherical import spherical_exclude_run, wants_spherical
+
+    sph_lines = spherical_exclude_run(cfg, run, a_min, a_src, cov) if wants_spherical(cfg) else []
+    if sph_lines and not ex.spaces:
+        return sph_lines
     rejected = {}
     if ex.points:
         pts = listed_points(ex.points, spaces_for(cfg)[0])
@@ -583,7 +594,7 @@ def exclude_run(cfg, run):
             lines.append(f"{r['space']}: {r['n_allowed']}/{r['n_points']} allowed; smallest allowed shortest loop "
                          f"{r['loop_min_allowed_frac']:.3f} x 2 chi, loop through the observer "
                          f"{r['clone_distance_allowed_frac']:.3f} x 2 chi")
-    return lines
+    return lines + sph_lines
 
 
 def cmd_exclude(args):

@@ -276,6 +276,17 @@ def check_name(name):
     return t
 
 
+def left_quaternions(name):
+    """The unit quaternions a of a left-multiplication group (D*4n, T*, O*, I*) as an array (|Gamma|, 4),
+    without building labelled isometries (fast for large prism groups); None for lens spaces."""
+    t = check_name(name)
+    if t[0] == "L":
+        return None
+    if t[0] == "D*":
+        return np.array(binary_dihedral(t[1] // 4))
+    return np.array({"T*": binary_tetrahedral, "O*": binary_octahedral, "I*": binary_icosahedral}[t[0]]())
+
+
 def group_elements(name):
     """The group of the named space: list of S3Isometry, identity first."""
     t = check_name(name)
