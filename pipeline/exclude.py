@@ -228,11 +228,11 @@ def separations_deg(u, R):
 
 
 def circle_radius_deg(d):
-    """Angular radius (deg) of the circle pair made by an image at distance d (chi); NaN for d >= 2."""
-    d = np.asarray(d, float)
-    with np.errstate(invalid="ignore"):
-        a = np.degrees(np.arccos(np.clip(d / 2.0, -1.0, 1.0)))
-    return np.where(d < 2.0 - 1e-12, a, np.nan)
+    """Angular radius (deg) of the circle pair made by an image at distance d (chi); NaN for d >= 2
+    (twinring.topology.geometry, flat)."""
+    from .topology.geometry import circle_radius_deg as radius
+
+    return radius(d, 0.0)
 
 
 # --------------------------------------------------------------------------- coverage and verdict
