@@ -247,8 +247,12 @@ class InjectSection:
     beam_fwhm_deg: float | None = _f(None, "float?", min=0.0, max=180.0)
     random_orientation: bool = _f(True, "bool")
     physics: str = _f("full", "str", choices=("sw", "full"))
+    omega_k: tuple = _f((), "floats", help="spherical spaces: campaign curvatures Omega_k (< 0), one size R/chi "
+                        "each (replaces sizes and radii_deg); [] = use sizes or radii_deg")
 
     def check(self, where):
+        if not all(-0.5 <= x < 0.0 for x in self.omega_k):
+            raise where("omega_k", list(self.omega_k), "a list of curvatures with -0.5 <= omega_k < 0")
         if not self.sizes and not self.radii_deg:
             raise where("sizes", [], "a list of sizes (chi) or inject.radii_deg")
         if not all(x > 0 for x in self.sizes):

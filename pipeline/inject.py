@@ -17,6 +17,17 @@ Size and radius
     Starkman 1998).  ``inject.sizes`` gives the sizes; otherwise
     ``inject.radii_deg`` gives the radii and size = 2 cos(alpha) / d1.
 
+Spherical spaces (L(p,q), D*4n, T*, O*, I*)
+    The size is the curvature radius in units of chi, size = R / chi (chi / R =
+    1 / size; twinring.topology.spherical.SphericalShape): image distances in chi
+    scale with it, d1 is the nearest visible image distance in R and the radius
+    obeys cos(alpha) = tan(d1 / 2) / tan(1 / size).  ``inject.omega_k`` lists
+    curvatures instead (one size each, chi / R from the background).  Skies are
+    Gamma-invariant Sachs-Wolfe skies (twinring.topology.skies_spherical; the
+    curvature radius in Mpc is chi times the size, for the spectral tilt), so
+    ``inject.physics`` must be ``sw``.  ``bound`` still reads sizes with the flat
+    formula: it does not yet turn a spherical campaign into a bound on Omega_k.
+
 Visible pairs
     Only predicted pairs the configured search family can see count: back-to-back
     pairs (separation >= 179.5 deg) for ``antipodal``, pairs with a separation
@@ -175,7 +186,14 @@ def distance_per_size(shape: SpaceShape, scfg) -> float:
 def campaign_sizes(cfg, shape, scfg):
     """Sizes (chi) of the campaign and d1; refuses sizes whose largest circle the search cannot see."""
     d1 = distance_per_size(shape, scfg)
-    if cfg.inject.sizes:
+    if cfg.inject.omega_k and not is_spherical_shape(shape):
+        raise InputError(f"{cfg.source or '<config>'}: inject.omega_k: found {list(cfg.inject.omega_k)} for the flat "
+                         f"space {shape.name}; allowed: [] (curvatures size only spherical spaces)")
+    if cfg.inject.omega_k:
+        from .exclude_spherical import chi_over_r_at
+
+        sizes = tuple(1.0 / chi_over_r_at(ok, cfg.cosmology) for ok in cfg.inject.omega_k)
+    elif cfg.inject.sizes:
         sizes = tuple(float(s) for s in cfg.inject.sizes)
     elif is_spherical_shape(shape):
         sizes = tuple(float(shape.size_for_radius(r, d1)) for r in cfg.inject.radii_deg)
@@ -202,7 +220,8 @@ def check_visible(cfg, sizes, d1, scfg, shape=None):
         if not (np.isfinite(r) and lo <= r <= hi):
             bad.append(f"{size:.4g} chi ({'no circle' if not np.isfinite(r) else f'radius {r:.1f} deg'})")
     if bad and spherical:
-        key = "inject.sizes" if cfg.inject.sizes else "inject.radii_deg"
+        key = ("inject.omega_k" if cfg.inject.omega_k else "inject.sizes" if cfg.inject.sizes else
+               "inject.radii_deg")
         raise InputError(f"{cfg.source or '<config>'}: {key}: campaign size(s) {', '.join(bad)} show no circle inside "
                          f"the searched radii {radii.min():g}-{radii.max():g} deg; allowed: sizes R/chi above "
                          f"{2.0 / math.pi:.4g} whose radius arccos(tan({d1:.4g}/2) / tan(1/size)) lies in that range")

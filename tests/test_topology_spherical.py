@@ -487,6 +487,14 @@ def test_spherical_campaign_sizes():
     assert radius == pytest.approx(67.77, abs=0.02) and len(targets) == 6
     lcfg = config_from_dict(dict(ISTAR_RUN, topology={"space": "L(8,1)"}))
     assert inject.distance_per_size(inject.shape_from_config(lcfg), lcfg.search) == pytest.approx(2 * math.pi / 8)
+    # a campaign over curvature: one size R/chi per omega_k, chi/R from the background (0.7095 at -0.05)
+    ocfg = config_from_dict(dict(ISTAR_RUN, inject=dict(ISTAR_RUN["inject"], omega_k=[-0.05, -0.08])))
+    osizes, _ = inject.campaign_sizes(ocfg, shape, ocfg.search)
+    assert 1 / osizes[0] == pytest.approx(0.7095, abs=5e-4) and osizes[1] < osizes[0]
+    assert shape.radius_deg(osizes[0], d1) == pytest.approx(67.77, abs=0.03)
+    fcfg = config_from_dict({"topology": {"space": "E1"}, "inject": {"omega_k": [-0.05]}})
+    with pytest.raises(InputError, match="inject.omega_k"):
+        inject.campaign_sizes(fcfg, inject.shape_from_config(fcfg), fcfg.search)
     # a size whose images lie beyond the last-scattering sphere shows no circle: refused before any work
     bad = config_from_dict(dict(ISTAR_RUN, inject=dict(ISTAR_RUN["inject"], sizes=[10.0])))
     with pytest.raises(InputError, match="inject.sizes"):
