@@ -111,7 +111,6 @@ def test_verdicts_against_circle_formula():
     # (Cornish, Spergel & Starkman 1998), with d = 2 pi/p (L(p,1)), pi/n (D*4n), pi/3, pi/4, pi/5.
     k = X.chi_over_r_at(-0.05)
     assert k == pytest.approx(0.7095, abs=5e-4)
-    cov = FX.make_coverage("general", 10.0)
     for a_min in (5.0, 10.0, 30.0, 60.0):
         cov = FX.make_coverage("general", a_min)
         for name, d in ([(f"L({p},1)", 2 * math.pi / p) for p in range(2, 30)]
@@ -138,7 +137,7 @@ def test_summary_beside_compact_part_ic():
     # COMPACT Part Ic (Saha et al. 2024, arXiv 2409.02226, abstract): |Omega_K| ~ 0.05 -> p <= 9, |Omega_K|
     # ~ 0.02 -> p can be as high as 24 (lens spaces, worst-placed observer).  Our measured values (alpha_min
     # 10 deg, Planck 2018 background): 8 and 25 -- within one of theirs (their alpha_min and background are not
-    # in the abstract).  L(p,1): the homogeneous bound floor(2 pi / d_crit) - ... computed here directly.
+    # in the abstract).  The homogeneous columns against p < 2 pi / d_crit and n < pi / d_crit, computed here.
     cov = FX.make_coverage("general", 10.0)
     rows = X.spherical_rows(["L(p,1)", "L(p,q)", "D*4n", "T*", "O*", "I*"], [-0.05, -0.02], cov, p_max=60)
     s = {r["omega_k"]: r for r in X.summary_rows(rows, 60)}
