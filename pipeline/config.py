@@ -279,8 +279,12 @@ class InjectSection:
     beam_fwhm_deg: float | None = _f(None, "float?", min=0.0, max=180.0)
     random_orientation: bool = _f(True, "bool")
     physics: str = _f("full", "str", choices=("sw", "full"))
+    omega_k: tuple = _f((), "floats", help="spherical spaces: campaign curvatures Omega_k (< 0), one size R/chi "
+                        "each (replaces sizes and radii_deg); [] = use sizes or radii_deg")
 
     def check(self, where):
+        if not all(-0.5 <= x < 0.0 for x in self.omega_k):
+            raise where("omega_k", list(self.omega_k), "a list of curvatures with -0.5 <= omega_k < 0")
         if not self.sizes and not self.radii_deg:
             raise where("sizes", [], "a list of sizes (chi) or inject.radii_deg")
         if not all(x > 0 for x in self.sizes):
@@ -316,8 +320,28 @@ class ExcludeSection:
     alpha_min_deg: float | None = _f(None, "float?", min=0.0, max=90.0, open_min=True)
     coverage: str = _f("general", "str", choices=("general", "antipodal", "run"))
     antipodal_tol_deg: float = _f(1.0, "float", min=0.0, max=90.0)
+    # spherical spaces (pipeline/exclude_spherical.py)
+    spherical: tuple = _f((), "strs", help="spherical families to exclude versus omega_k: L(p,1), L(p,q), D*4n, "
+                          "T*, O*, I* or named spaces such as L(8,3); [] = none (or a spherical topology.space)")
+    omega_k: tuple = _f((), "floats", help="curvatures Omega_k (< 0) at which the spherical spaces are judged; "
+                        "[] = cosmology.omega_k")
+    p_max: int = _f(40, "int", min=2, max=1000, help="largest group order p of L(p,q) and n of D*4n tabulated")
 
     def check(self, where):
+        for ok in self.omega_k:
+            if not -0.5 <= ok < 0.0:
+                raise where("omega_k", list(self.omega_k), "a list of curvatures with -0.5 <= omega_k < 0")
+        from .topology import spherical
+
+        for f in self.spherical:
+            if f not in ("L(p,1)", "L(p,q)", "D*4n") and not spherical.is_spherical_name(f):
+                raise where("spherical", list(self.spherical), "a list among L(p,1), L(p,q), D*4n, T*, O*, I* or "
+                            "named spaces such as L(8,3)")
+            if spherical.is_spherical_name(f):
+                try:
+                    spherical.check_name(f)
+                except spherical.SphericalParamError as exc:
+                    raise where("spherical", list(self.spherical), exc.allowed)
         allowed = tuple(f"E{i}" for i in range(1, 18))
         for s in self.spaces:
             if s not in allowed:

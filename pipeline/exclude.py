@@ -228,11 +228,11 @@ def separations_deg(u, R):
 
 
 def circle_radius_deg(d):
-    """Angular radius (deg) of the circle pair made by an image at distance d (chi); NaN for d >= 2."""
-    d = np.asarray(d, float)
-    with np.errstate(invalid="ignore"):
-        a = np.degrees(np.arccos(np.clip(d / 2.0, -1.0, 1.0)))
-    return np.where(d < 2.0 - 1e-12, a, np.nan)
+    """Angular radius (deg) of the circle pair made by an image at distance d (chi); NaN for d >= 2
+    (twinring.topology.geometry, flat)."""
+    from .topology.geometry import circle_radius_deg as radius
+
+    return radius(d, 0.0)
 
 
 # --------------------------------------------------------------------------- coverage and verdict
@@ -530,6 +530,12 @@ def spaces_for(cfg):
 
 def check_exclude(cfg):
     """Checks that need no work (before any output is written)."""
+    from .exclude_spherical import check_spherical, wants_spherical
+
+    if wants_spherical(cfg):
+        check_spherical(cfg)
+        if not cfg.exclude.spaces:
+            return
     for name in spaces_for(cfg):
         if name not in SPACES:
             raise InputError(f"{cfg.source}: topology.space: found {name!r}; allowed: E1-E17 for exclude "
@@ -546,6 +552,11 @@ def exclude_run(cfg, run):
     ex = cfg.exclude
     a_min, a_src = alpha_min_for(cfg, run.dir)
     cov = coverage_for(cfg, a_min)
+    from .exclude_spherical import spherical_exclude_run, wants_spherical
+
+    sph_lines = spherical_exclude_run(cfg, run, a_min, a_src, cov) if wants_spherical(cfg) else []
+    if sph_lines and not ex.spaces:
+        return sph_lines
     rejected = {}
     if ex.points:
         pts = listed_points(ex.points, spaces_for(cfg)[0])
@@ -583,7 +594,7 @@ def exclude_run(cfg, run):
             lines.append(f"{r['space']}: {r['n_allowed']}/{r['n_points']} allowed; smallest allowed shortest loop "
                          f"{r['loop_min_allowed_frac']:.3f} x 2 chi, loop through the observer "
                          f"{r['clone_distance_allowed_frac']:.3f} x 2 chi")
-    return lines
+    return lines + sph_lines
 
 
 def cmd_exclude(args):

@@ -17,6 +17,17 @@ Size and radius
     Starkman 1998).  ``inject.sizes`` gives the sizes; otherwise
     ``inject.radii_deg`` gives the radii and size = 2 cos(alpha) / d1.
 
+Spherical spaces (L(p,q), D*4n, T*, O*, I*)
+    The size is the curvature radius in units of chi, size = R / chi (chi / R =
+    1 / size; twinring.topology.spherical.SphericalShape): image distances in chi
+    scale with it, d1 is the nearest visible image distance in R and the radius
+    obeys cos(alpha) = tan(d1 / 2) / tan(1 / size).  ``inject.omega_k`` lists
+    curvatures instead (one size each, chi / R from the background).  Skies are
+    Gamma-invariant Sachs-Wolfe skies (twinring.topology.skies_spherical; the
+    curvature radius in Mpc is chi times the size, for the spectral tilt), so
+    ``inject.physics`` must be ``sw``.  ``bound`` still reads sizes with the flat
+    formula: it does not yet turn a spherical campaign into a bound on Omega_k.
+
 Visible pairs
     Only predicted pairs the configured search family can see count: back-to-back
     pairs (separation >= 179.5 deg) for ``antipodal``, pairs with a separation
@@ -108,8 +119,16 @@ class SpaceShape:
                            self.euler_deg if euler_deg is None else euler_deg, scale=float(size))
 
 
+def is_spherical_shape(shape) -> bool:
+    return getattr(shape, "geometry", "flat") == "spherical"
+
+
 def shape_from_config(cfg) -> SpaceShape:
     t = cfg.topology
+    from .topology.spherical import is_spherical_name, shape_from_topology
+
+    if is_spherical_name(t.space):               # size = R / chi (twinring.topology.spherical.SphericalShape)
+        return shape_from_topology(t)
     if not t.lengths:
         raise InputError(f"{cfg.source}: topology.space: found {t.space!r}; allowed: a space with lengths "
                          "(E1-E17) for an injection campaign")
@@ -132,8 +151,14 @@ def visible(pairs, scfg):
 def targets(space, scfg):
     """(radius_deg, target pairs) of a space: the largest visible circles; (nan, []) when none."""
     from .topology.circles import predict_pairs
+    from .topology.geometry import SPHERICAL, kind_of
 
-    vis = visible(predict_pairs(space, max_distance=2.0 - 1e-9), scfg)   # a circle needs d < 2 strictly
+    if kind_of(space) == SPHERICAL:
+        from .topology.spherical import predict_pairs as spherical_pairs
+
+        vis = visible(spherical_pairs(space), scfg)
+    else:
+        vis = visible(predict_pairs(space, max_distance=2.0 - 1e-9), scfg)   # a circle needs d < 2 strictly
     if not vis:
         return float("nan"), []
     r = max(p["radius_deg"] for p in vis)
@@ -144,6 +169,12 @@ def distance_per_size(shape: SpaceShape, scfg) -> float:
     """d1: the smallest |g x0 - x0| of a visible pair for the space at size 1."""
     from .topology.circles import predict_pairs
 
+    if is_spherical_shape(shape):
+        d1 = shape.distance_per_size(lambda pairs: visible(pairs, scfg))
+        if math.isfinite(d1):
+            return d1
+        raise InputError(f"topology.space: {shape.name} shows no circle pair the {scfg.family} search family can "
+                         "see; allowed: another search.family or space")
     for scale in (0.5, 0.25, 0.125, 0.0625):
         vis = visible(predict_pairs(shape.at(scale), max_distance=2.0 - 1e-9), scfg)
         if vis:
@@ -155,11 +186,20 @@ def distance_per_size(shape: SpaceShape, scfg) -> float:
 def campaign_sizes(cfg, shape, scfg):
     """Sizes (chi) of the campaign and d1; refuses sizes whose largest circle the search cannot see."""
     d1 = distance_per_size(shape, scfg)
-    if cfg.inject.sizes:
+    if cfg.inject.omega_k and not is_spherical_shape(shape):
+        raise InputError(f"{cfg.source or '<config>'}: inject.omega_k: found {list(cfg.inject.omega_k)} for the flat "
+                         f"space {shape.name}; allowed: [] (curvatures size only spherical spaces)")
+    if cfg.inject.omega_k:
+        from .exclude_spherical import chi_over_r_at
+
+        sizes = tuple(1.0 / chi_over_r_at(ok, cfg.cosmology) for ok in cfg.inject.omega_k)
+    elif cfg.inject.sizes:
         sizes = tuple(float(s) for s in cfg.inject.sizes)
+    elif is_spherical_shape(shape):
+        sizes = tuple(float(shape.size_for_radius(r, d1)) for r in cfg.inject.radii_deg)
     else:
         sizes = tuple(2.0 * math.cos(math.radians(r)) / d1 for r in cfg.inject.radii_deg)
-    check_visible(cfg, sizes, d1, scfg)
+    check_visible(cfg, sizes, d1, scfg, shape)
     return sizes, d1
 
 
@@ -169,15 +209,22 @@ def visible_radius(size, d1):
     return math.degrees(math.acos(c)) if c < 1.0 else float("nan")
 
 
-def check_visible(cfg, sizes, d1, scfg):
+def check_visible(cfg, sizes, d1, scfg, shape=None):
     """Every campaign size must show a circle inside the searched radii (within inject.radius_tol_deg)."""
     radii = np.asarray(scfg.radii_deg(), float)
     lo, hi = radii.min() - cfg.inject.radius_tol_deg, radii.max() + cfg.inject.radius_tol_deg
     bad = []
+    spherical = is_spherical_shape(shape)
     for size in sizes:
-        r = visible_radius(size, d1)
+        r = shape.radius_deg(size, d1) if spherical else visible_radius(size, d1)
         if not (np.isfinite(r) and lo <= r <= hi):
             bad.append(f"{size:.4g} chi ({'no circle' if not np.isfinite(r) else f'radius {r:.1f} deg'})")
+    if bad and spherical:
+        key = ("inject.omega_k" if cfg.inject.omega_k else "inject.sizes" if cfg.inject.sizes else
+               "inject.radii_deg")
+        raise InputError(f"{cfg.source or '<config>'}: {key}: campaign size(s) {', '.join(bad)} show no circle inside "
+                         f"the searched radii {radii.min():g}-{radii.max():g} deg; allowed: sizes R/chi above "
+                         f"{2.0 / math.pi:.4g} whose radius arccos(tan({d1:.4g}/2) / tan(1/size)) lies in that range")
     if bad:
         key = "inject.sizes" if cfg.inject.sizes else "inject.radii_deg"
         raise InputError(f"{cfg.source or '<config>'}: {key}: campaign size(s) {', '.join(bad)} show no circle inside "
@@ -231,7 +278,10 @@ def injected_sky(ctx: InjectContext, isize, irep):
     r_orient, r_modes, r_noise = unit_rngs(ctx.seed, isize, irep)
     euler = random_euler(r_orient) if ctx.random_orientation else None
     space = ctx.shape.at(ctx.sizes[isize], euler)
-    alm = sky_alm(space, ctx.recipe, cosmo=ctx.cosmo, nthreads=1, rng=r_modes)
+    if is_spherical_shape(ctx.shape):
+        alm = spherical_sky_alm(space, ctx.recipe, ctx.cosmo, r_modes)
+    else:
+        alm = sky_alm(space, ctx.recipe, cosmo=ctx.cosmo, nthreads=1, rng=r_modes)
     if ctx.beam_fwhm_deg > 0:
         alm = hp.almxfl(alm, hp.gauss_beam(math.radians(ctx.beam_fwhm_deg), lmax=ctx.recipe.lmax))
     m = hp.alm2map(alm, ctx.nside, lmax=ctx.recipe.lmax, mmax=ctx.recipe.lmax, pixwin=False)
@@ -242,6 +292,20 @@ def injected_sky(ctx: InjectContext, isize, irep):
     sky = SkyMap(values=m * mask, mask=mask, nside=int(ctx.nside), unit_in="uK", frame=None, checksum="",
                  notes=[], path=f"injection {isize}/{irep}")
     return space, sky
+
+
+def spherical_sky_alm(space, recipe, cosmo, rng):
+    """Unbeamed Sachs-Wolfe a_lm (uK) of a spherical space (twinring.topology.skies_spherical); the curvature
+    radius is chi (the configured background) times the campaign size, l < recipe.lmin zeroed."""
+    from . import cosmology
+    from .topology.skies_spherical import sw_alm
+
+    p = cosmology._params(cosmo)
+    r_mpc = cosmology.chi_ls_gpc(cosmo) * 1000.0 / space.chi_over_r
+    alm, _ = sw_alm(space, recipe.lmax, rng, cosmology.t0_uk(cosmo), r_mpc, p[7], p[8], p[9],
+                    recipe.kmax_factor or 1.0, nthreads=1)
+    alm[hp.Alm.getlm(recipe.lmax)[0] < recipe.lmin] = 0.0
+    return alm
 
 
 def _window(ctx, radius):
@@ -480,6 +544,20 @@ def check_campaign(cfg, ctx: InjectContext):
     """Parameters that cannot make a sky, before any work."""
     from .topology.skies import SkyParamError, check_sky
 
+    if is_spherical_shape(ctx.shape):
+        from .topology.skies_spherical import check_centres
+
+        if ctx.recipe.physics != "sw":
+            raise InputError(f"{cfg.source}: inject.physics: found {ctx.recipe.physics!r}; allowed: sw for the "
+                             f"spherical space {ctx.shape.name} (Sachs-Wolfe skies only)")
+        for size in (min(ctx.sizes), max(ctx.sizes)):
+            try:
+                check_centres(ctx.shape.at(size), ctx.recipe.lmax, ctx.recipe.kmax_factor or 1.0)
+            except Exception as exc:
+                raise InputError(f"{cfg.source}: inject.sizes: size {size:.3g} (R/chi) of {ctx.shape.name} rejected "
+                                 f"({exc}); allowed: sizes above {2 / math.pi:.4g} and a prepare.lmax the sky "
+                                 "sampler can reach")
+        return
     for size in (min(ctx.sizes), max(ctx.sizes)):
         try:
             check_sky(ctx.shape.at(size), ctx.recipe, memory_gb=cfg.compute.memory_gb, cosmo=ctx.cosmo)
@@ -525,7 +603,9 @@ def inject_run(cfg, run, sky=None):
                 realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=instrument(cfg)[0],
                 beam_fwhm_deg=instrument(cfg)[1],
                 physics=ctx.recipe.physics, confidence=CONFIDENCE, search_family=cfg.search.family,
-                size_definition="length of the first generator in units of chi (cubic torus: side L)")
+                size_definition=getattr(shape, "size_definition",
+                                        "length of the first generator in units of chi (cubic torus: side L)"),
+                geometry=getattr(shape, "geometry", "flat"))
     write_table(inj, run.dir / INJECTIONS, meta)
     write_table(rec, run.dir / RECOVERY, meta)
     lines = [f"{len(units)} injected skies in {dt:.1f} s ({dt / max(1, len(units)):.2f} s each); "

@@ -407,3 +407,148 @@ def test_istar_sachs_wolfe_sky_matches_predicted_pairs(tmp_path):
         assert min(abs(tw - r["twist_deg"]), 360 - abs(tw - r["twist_deg"])) < 2.0
     fake = dict(lon1_deg=10.0, lat1_deg=20.0, lon2_deg=200.0, lat2_deg=-35.0, radius_deg=40.0, flip=True)
     assert _s_best(alm, 48, fake)[0] < 0.7
+
+
+# --------------------------------------------------------------------------- search, calibration, injection
+ISTAR_RUN = {"topology": {"space": "I*"}, "cosmology": {"omega_k": -0.05},
+             "prepare": {"nside": 32, "lmax": 40, "fwhm_deg": 5.0},
+             "search": {"family": "antipodal", "nside_centers": 16, "radius_deg": [55, 80, 1.0], "refine": False,
+                        "top": 30},
+             "calibrate": {"simulations": 9},
+             "inject": {"radii_deg": [67.0], "realizations": 2, "physics": "sw", "noise_uk_arcmin": 0.0,
+                        "beam_fwhm_deg": 0.0, "false_alarm": 0.1, "threshold": "local"},
+             "compute": {"progress": False}}
+
+
+def _matches(row, pairs, centre_tol=6.0, radius_tol=3.0):
+    """Index of the predicted pair whose centres (either way round) and radius the candidate row matches."""
+    a = rings.lonlat_to_vec(row["lon1_deg"], row["lat1_deg"])
+    for i, p in enumerate(pairs):
+        for lon, lat in ((p["lon1_deg"], p["lat1_deg"]), (p["lon2_deg"], p["lat2_deg"])):
+            sep = rings.separation_deg(a, rings.lonlat_to_vec(lon, lat))
+            if sep < centre_tol and abs(row["radius_deg"] - p["radius_deg"]) < radius_tol:
+                return i
+    return None
+
+
+@pytest.fixture(scope="module")
+def istar_run():
+    """A noiseless I* Sachs-Wolfe sky (omega_k = -0.05), its antipodal search over 55-80 deg and a calibration."""
+    from twinring import calibrate as cal
+    from twinring import prepare
+    from twinring import search as search_mod
+    from twinring.skymap import SkyMap
+    from twinring.topology import skies_spherical as SS
+
+    cfg = config_from_dict(ISTAR_RUN)
+    space = S.spherical_from_config(cfg.topology, cfg.cosmology)
+    m = SS.make_sky(space, nside=32, lmax=40, fwhm_deg=5.0, seed=3)
+    sky = SkyMap(values=m, mask=np.ones_like(m), nside=32, unit_in="uK", frame=None, checksum="")
+    prepared = prepare.prepare_map(sky, cfg.prepare)
+    _, _, cand, _ = search_mod.run_search(prepared, cfg.search, cfg.compute, None)
+    ctx = cal.make_context(cfg, sky, prepared)
+    model = cal.NullModel(np.asarray(cfg.search.radii_deg()), cal.run_simulations(ctx, cfg.calibrate.simulations))
+    return cfg, space, sky, cal.annotate(cand, model, "s_grid", level=0.1), model
+
+
+def test_istar_search_and_calibration_rank_its_six_pairs_first(istar_run):
+    # The six back-to-back pairs of the dodecahedral space twisted by 36 degrees (Roukema et al. 2004, A&A 423,
+    # 821; Luminet et al. 2003, from memory) are the first six calibrated candidates of the unchanged antipodal
+    # search, each a different pair, and clearly ahead of the seventh (an unrelated pair).
+    cfg, space, sky, cand, model = istar_run
+    pairs = [p for p in S.predict_pairs(space) if p["radius_deg"] > 55]
+    assert len(pairs) == 6 and all(abs(p["twist_deg"] - 36.0) < 1e-6 and p["flip"] for p in pairs)
+    top = cand[:6]
+    idx = [_matches(r, pairs) for r in top]
+    assert None not in idx and len(set(idx)) == 6
+    for r in top:
+        assert bool(r["flip"]) and abs(float(r["twist_deg"]) - 36.0) <= 3.0
+    # N = 9 simulations: p_global is coarse (floor 0.1), but the order is clear
+    assert _matches(cand[6], pairs) is None
+    assert float(cand[6]["z"]) < float(top[5]["z"])
+    assert float(cand[6]["s_grid"]) < min(float(r["s_grid"]) for r in top) - 0.1
+    assert max(float(r["p_global"]) for r in top) < float(cand[6]["p_global"])
+
+
+def test_spherical_campaign_sizes():
+    # Size of a spherical space = R / chi (chi/R = 1/size); its nearest visible image is at pi/5 for I* and
+    # 2 pi/8 for L(8,1) (from memory), and a size shows cos(alpha) = tan(d1/2) / tan(1/size) (Cornish, Spergel &
+    # Starkman 1998): at omega_k = -0.05 (chi/R = 0.7095) I*'s largest circles have radius 67.77 deg.
+    from twinring import inject
+
+    cfg = config_from_dict(ISTAR_RUN)
+    shape = inject.shape_from_config(cfg)
+    assert inject.distance_per_size(shape, cfg.search) == pytest.approx(math.pi / 5)
+    sizes, d1 = inject.campaign_sizes(cfg, shape, cfg.search)
+    assert math.degrees(math.acos(math.tan(d1 / 2) / math.tan(1 / sizes[0]))) == pytest.approx(67.0)
+    k = 0.7095
+    radius, targets = inject.targets(shape.at(1 / k), cfg.search)
+    assert radius == pytest.approx(math.degrees(math.acos(math.tan(math.pi / 10) / math.tan(k))), abs=1e-6)
+    assert radius == pytest.approx(67.77, abs=0.02) and len(targets) == 6
+    lcfg = config_from_dict(dict(ISTAR_RUN, topology={"space": "L(8,1)"}))
+    assert inject.distance_per_size(inject.shape_from_config(lcfg), lcfg.search) == pytest.approx(2 * math.pi / 8)
+    # a campaign over curvature: one size R/chi per omega_k, chi/R from the background (0.7095 at -0.05)
+    ocfg = config_from_dict(dict(ISTAR_RUN, inject=dict(ISTAR_RUN["inject"], omega_k=[-0.05, -0.08])))
+    osizes, _ = inject.campaign_sizes(ocfg, shape, ocfg.search)
+    assert 1 / osizes[0] == pytest.approx(0.7095, abs=5e-4) and osizes[1] < osizes[0]
+    assert shape.radius_deg(osizes[0], d1) == pytest.approx(67.77, abs=0.03)
+    fcfg = config_from_dict({"topology": {"space": "E1"}, "inject": {"omega_k": [-0.05]}})
+    with pytest.raises(InputError, match="inject.omega_k"):
+        inject.campaign_sizes(fcfg, inject.shape_from_config(fcfg), fcfg.search)
+    # a size whose images lie beyond the last-scattering sphere shows no circle: refused before any work
+    bad = config_from_dict(dict(ISTAR_RUN, inject=dict(ISTAR_RUN["inject"], sizes=[10.0])))
+    with pytest.raises(InputError, match="inject.sizes"):
+        inject.campaign_sizes(bad, inject.shape_from_config(bad), bad.search)
+
+
+def test_spherical_injection_recovers_istar(istar_run):
+    # Injected I* skies (random orientations, the calibration above, targeted mode, local thresholds: N = 9
+    # simulations set no useful global level) are recovered at the radius of the requested size, with S well
+    # above the threshold; full physics is refused for spherical spaces (Sachs-Wolfe only).
+    import dataclasses
+
+    from twinring import inject
+
+    cfg, space, sky, cand, model = istar_run
+    ctx = inject.make_context(cfg, sky, model)
+    inject.check_campaign(cfg, ctx)
+    res = [inject.inject_unit(ctx, (0, j)) for j in range(2)]
+    for r in res:
+        assert r["n_targets"] == 6 and r["radius_deg"] == pytest.approx(67.0, abs=1e-6)
+        assert r["detected"] and abs(r["radius_found_deg"] - 67.0) <= 2.0 and r["s"] > 0.9
+    full = dataclasses.replace(ctx, recipe=dataclasses.replace(ctx.recipe, physics="full"))
+    with pytest.raises(InputError, match="inject.physics"):
+        inject.check_campaign(cfg, full)
+
+
+def test_geometry_interface_flat_and_spherical():
+    # One interface for both geometries (twinring.topology.geometry): the circle radius from the image distance
+    # (cos alpha = d / 2 flat, tan(d k / 2) / tan(k) spherical; Cornish, Spergel & Starkman 1998) and its
+    # inverse; nearest images and shortest loops: the cubic torus of side L has loops L (common practice), the
+    # half-turn space E2 [a, b, c] a shortest loop c (the screw's translation, on its axis; twinring's E2
+    # convention), longer through an observer off the axis (sqrt(c^2 + 4 rho^2)), and
+    # I* pi/5 everywhere (Luminet et al. 2003, from memory).
+    from twinring.topology import geometry as G
+
+    for k in (0.0, 0.3, 1.2):
+        for a in (10.0, 45.0, 80.0):
+            d = G.distance_for_radius(a, k)
+            assert G.circle_radius_deg(d, k) == pytest.approx(a, abs=1e-9)
+    assert np.isnan(G.circle_radius_deg(2.0, 0.0)) and np.isnan(G.circle_radius_deg(2.0, 0.7))
+    torus = M.build_space("E1", [1.3, 1.3, 1.3], observer=[0.2, 0.1, -0.3])
+    assert G.kind_of(torus) == G.FLAT and G.curvature_of(torus) == 0.0
+    assert G.nearest_image_distance(torus) == pytest.approx(1.3) and G.shortest_loop(torus) == pytest.approx(1.3)
+    near = G.images_within(torus, 1.9)
+    assert len(near) == 6 + 12 and near[0][1] == pytest.approx(1.3)     # faces, then edges at 1.3 sqrt 2
+    e2 = M.build_space("E2", [2.5, 2.5, 1.2], observer=[0.5, 0.3, 0.0])
+    assert G.shortest_loop(e2) == pytest.approx(1.2)
+    assert G.nearest_image_distance(e2) == pytest.approx(math.sqrt(1.2**2 + 4 * (0.5**2 + 0.3**2)))
+    k = 0.7
+    ist = S.build_spherical("I*", k, observer=[0.3, -0.2, 0.5])
+    assert G.kind_of(ist) == G.SPHERICAL and G.curvature_of(ist) == k
+    assert G.nearest_image_distance(ist) == pytest.approx(math.pi / 5 / k)
+    assert G.shortest_loop(ist) == pytest.approx(math.pi / 5 / k)
+    within = G.images_within(ist, 2.0)
+    assert sum(1 for _, d in within if abs(d - math.pi / 5 / k) < 1e-9) == 12
+    x, y = ist.point(np.array([0.0, 0.0, 1.0]), 0.0), ist.point(np.array([0.0, 0.0, 1.0]), 0.35)
+    assert G.distance(ist, x, y) == pytest.approx(0.35 / k)

@@ -216,3 +216,13 @@ def make_sky(space: SphericalSpace, nside=32, lmax=64, fwhm_deg=3.0, seed=5, noi
     m = hp.alm2map(alm, nside, lmax=lmax)
     m = m + noise_map(nside, noise_uk_arcmin, np.random.default_rng(ss_noise))
     return (m, info) if return_info else m
+
+
+def check_centres(space: SphericalSpace, lmax, kmax_factor=1.0):
+    """Raise ValueError when a sky at this lmax would need more than MAX_CENTRES centres (before any work)."""
+    n_max = n_max_for(space, lmax, kmax_factor)
+    dims = [invariant_dimension(space, n) for n in range(3, n_max + 1)]
+    K = max(dims, default=0) + MARGIN
+    if K > MAX_CENTRES:
+        raise ValueError(f"{K} centres needed (more than {MAX_CENTRES}): lower lmax or choose a larger group")
+    return K

@@ -276,6 +276,17 @@ def check_name(name):
     return t
 
 
+def left_quaternions(name):
+    """The unit quaternions a of a left-multiplication group (D*4n, T*, O*, I*) as an array (|Gamma|, 4),
+    without building labelled isometries (fast for large prism groups); None for lens spaces."""
+    t = check_name(name)
+    if t[0] == "L":
+        return None
+    if t[0] == "D*":
+        return np.array(binary_dihedral(t[1] // 4))
+    return np.array({"T*": binary_tetrahedral, "O*": binary_octahedral, "I*": binary_icosahedral}[t[0]]())
+
+
 def group_elements(name):
     """The group of the named space: list of S3Isometry, identity first."""
     t = check_name(name)
@@ -383,9 +394,10 @@ def circle_radius(d, chi_over_r):
 
     cos alpha = tan(d / 2) / tan(chi / R) (Cornish, Spergel & Starkman 1998).
     """
-    d = np.asarray(d, float)
-    c = np.tan(d / 2.0) / math.tan(chi_over_r)
-    return np.where((d > 0) & (c < 1.0), np.arccos(np.clip(c, -1.0, 1.0)), np.nan)
+    from .geometry import circle_radius_deg
+
+    k = float(chi_over_r)
+    return np.radians(circle_radius_deg(np.asarray(d, float) / k, k))
 
 
 def twist_and_flip(space: SphericalSpace, g: S3Isometry, c1, c2, alpha, nfit=48):
@@ -500,3 +512,59 @@ def _fmt(v):
     import json
 
     return repr(v) if isinstance(v, str) else json.dumps(v, default=str)
+
+
+# --------------------------------------------------------------------------- injection campaigns
+@dataclass(frozen=True)
+class SphericalShape:
+    """A spherical space for an injection campaign (twinring.inject), with plain values only.
+
+    Its size is the curvature radius in units of chi, ``size = R / chi = 1 / (chi/R)``: every image
+    distance in chi is size x (its distance in R), as a flat space's distances scale with its first
+    length.  ``d1`` (``distance_per_size``) is then the nearest visible image distance in R, and a
+    size shows its largest circle at cos alpha = tan(d1 / 2) / tan(1 / size) (Cornish, Spergel &
+    Starkman 1998).  Sizes must exceed 2 / pi (chi / R < pi / 2).
+    """
+
+    name: str
+    observer: tuple          # quaternion (4) or tangent step (3), as topology.observer
+    euler_deg: tuple
+    lengths: tuple = ()
+    geometry: str = "spherical"
+    size_definition: str = "curvature radius R in units of chi (size = R / chi; chi / R = 1 / size)"
+
+    def at(self, size, euler_deg=None) -> SphericalSpace:
+        return build_spherical(self.name, 1.0 / float(size), self.observer,
+                               self.euler_deg if euler_deg is None else euler_deg)
+
+    @staticmethod
+    def chi_over_r(size) -> float:
+        return 1.0 / float(size)
+
+    def radius_deg(self, size, d1) -> float:
+        """Largest visible circle radius (deg) at this size, NaN when none."""
+        from .geometry import circle_radius_deg
+
+        k = 1.0 / float(size)
+        if not 0.0 < k < math.pi / 2:
+            return float("nan")
+        return float(circle_radius_deg(float(d1) / k, k))
+
+    @staticmethod
+    def size_for_radius(radius_deg, d1):
+        """Size whose nearest visible image (d1, in R) makes a circle of radius ``radius_deg``."""
+        c = np.cos(np.radians(np.asarray(radius_deg, float)))
+        return 1.0 / np.arctan(math.tan(float(d1) / 2.0) / c)
+
+    def distance_per_size(self, visible) -> float:
+        """d1 (R): the nearest image making a pair that ``visible(pairs)`` keeps (the group and observer fix
+        the directions, so visibility does not depend on the size); inf when none."""
+        space = self.at(1.0 / 1.55)
+        vis = visible(predict_pairs(space))
+        return min((p["distance_r"] for p in vis), default=math.inf)
+
+
+def shape_from_topology(topology) -> SphericalShape:
+    check_name(topology.space)
+    return SphericalShape(topology.space.replace(" ", ""), tuple(float(x) for x in topology.observer),
+                          tuple(float(x) for x in topology.euler_deg))
