@@ -45,6 +45,27 @@ def size_bound(alpha_min_deg, d1=1.0, chi=1.0):
     return 2.0 * float(chi) * math.cos(math.radians(float(alpha_min_deg))) / float(d1)
 
 
+def spherical_limits(alpha_min_deg, d1, cosmo=None):
+    """A spherical space's limits from alpha_min: (largest chi/R not excluded, its Omega_k).
+
+    The nearest visible image lies at d1 (in curvature radii R), and its circle has
+    cos(alpha) = tan(d1/2) / tan(chi/R) (Cornish, Spergel & Starkman 1998), which grows with
+    chi/R; spaces with chi/R above arctan(tan(d1/2) / cos(alpha_min)) show circles larger than
+    alpha_min and are excluded.  Omega_k is the curvature giving that chi/R with the other
+    parameters of ``cosmo`` (NaN when none in [-0.5, 0) does).
+    """
+    from scipy.optimize import brentq
+
+    from .exclude_spherical import chi_over_r_at
+
+    k = math.atan(math.tan(0.5 * float(d1)) / math.cos(math.radians(float(alpha_min_deg))))
+    try:
+        ok = brentq(lambda x: chi_over_r_at(x, cosmo) - k, -0.5, -1e-8, xtol=1e-10)
+    except ValueError:
+        ok = float("nan")
+    return k, float(ok)
+
+
 def alpha_min(radii, fractions, level=0.95, significant_radii=(), radius_tol=0.0):
     """Smallest campaign radius above which recovery >= level everywhere and nothing significant was found.
 
@@ -110,15 +131,22 @@ def statement(row) -> str:
             why = f"no campaign radius reached {row['recovery_level']:.0%} recovery ({MEASURES[row['recovery_measure']]})"
         return (f"No bound on the {row['space']}: {why} (largest campaign radius "
                 f"{row['radius_max_deg']:.1f} deg).{physics}")
-    return (f"No matched circles with radius above {row['alpha_min_deg']:.1f} deg "
-            f"({MEASURES[row['recovery_measure']]} >= {row['recovery_level']:.0%} at {row['n_at_alpha']} injected "
-            f"skies per radius; no candidate with p_global <= {row['false_alarm']:g} from {n_sims} simulations), so "
-            f"the {row['space']} is larger than {row['size_chi']:.3f} chi = {row['size_gpc']:.1f} Gpc "
+    evidence = (f"No matched circles with radius above {row['alpha_min_deg']:.1f} deg "
+                f"({MEASURES[row['recovery_measure']]} >= {row['recovery_level']:.0%} at {row['n_at_alpha']} "
+                f"injected skies per radius; no candidate with p_global <= {row['false_alarm']:g} from {n_sims} "
+                f"simulations), so ")
+    if row.get("geometry") == "spherical":
+        ok = row.get("omega_k_min", float("nan"))
+        tail = (f", i.e. Omega_k > {ok:.4g} with the other parameters of the cosmology section" if np.isfinite(ok)
+                else "")
+        return (evidence + f"the {row['space']} has chi/R < {row['chi_over_r_max']:.4f} (its curvature radius "
+                f"exceeds {row['size_chi']:.3f} chi){tail}.{physics}")
+    return (evidence + f"the {row['space']} is larger than {row['size_chi']:.3f} chi = {row['size_gpc']:.1f} Gpc "
             f"(chi = {row['chi_gpc']:.2f} Gpc).{physics}")
 
 
 def bound_row(recovery: Table, level, false_alarm, sig, radius_tol, d1, chi_gpc, space, point_fraction=False,
-              n_sims=0, physics=""):
+              n_sims=0, physics="", geometry="flat", cosmo=None):
     """The bound's values. ``sig``: significant rows (radius, flip, p_global, S) of :func:`significant_rows`."""
     col = "fraction" if point_fraction else "lower_95"
     n = np.asarray(recovery["n"], int)
@@ -127,7 +155,13 @@ def bound_row(recovery: Table, level, false_alarm, sig, radius_tol, d1, chi_gpc,
     a = alpha_min(recovery["radius_deg"], measure, level, [r for r, *_ in sig], radius_tol)
     if sig:
         a = float("nan")
-    size = size_bound(a, d1) if np.isfinite(a) else float("nan")
+    k_max = ok_min = float("nan")
+    if geometry == "spherical":            # size = R / chi: spaces with a smaller curvature radius are excluded
+        if np.isfinite(a):
+            k_max, ok_min = spherical_limits(a, d1, cosmo)
+        size = 1.0 / k_max if np.isfinite(k_max) else float("nan")
+    else:
+        size = size_bound(a, d1) if np.isfinite(a) else float("nan")
     n_at = int(n[np.argmin(np.abs(np.asarray(recovery["radius_deg"], float) - a))]) if np.isfinite(a) else 0
     det = "; ".join(f"radius {r:.1f} deg, flip {str(f).lower()}, S_grid {sv:.3f}, p_global {p:.3g}"
                     for r, f, p, sv in sorted(sig, key=lambda x: x[2])[:5])
@@ -135,6 +169,7 @@ def bound_row(recovery: Table, level, false_alarm, sig, radius_tol, d1, chi_gpc,
                 recovery_level=float(level), recovery_measure=col, false_alarm=float(false_alarm),
                 n_significant=len(sig), n_sims=int(n_sims), n_at_alpha=n_at, n_max=int(n.max()) if n.size else 0,
                 n_needed=all_recovered_needed(level) if level < 1 else 0, detections=det, physics=physics,
+                geometry=geometry, chi_over_r_max=k_max, omega_k_min=ok_min,
                 distance_per_size=float(d1), radius_max_deg=float(np.max(recovery["radius_deg"])) if len(recovery)
                 else float("nan"))
 
@@ -185,13 +220,16 @@ def bound_run(cfg, run):
     sig = significant_rows(tables[:1], level, n_sims)
     d1 = float(rec.meta.get("distance_per_size", 1.0))
     physics = str(rec.meta.get("physics_label", rec.meta.get("physics", "")))
+    geometry = str(rec.meta.get("geometry", "flat"))
     row = bound_row(rec, cfg.bound.recovery, level, sig, cfg.inject.radius_tol_deg, d1,
-                    chi_for(cfg), space_name(rec.meta), cfg.bound.point_fraction, n_sims, physics)
+                    chi_for(cfg), space_name(rec.meta), cfg.bound.point_fraction, n_sims, physics,
+                    geometry=geometry, cosmo=cfg.cosmology)
     t = bound_table(row)
     meta = provenance(cfg, None, "bound")
     meta.update(rule="alpha_min: smallest campaign radius whose recovery measure (recovery_measure) >= level there "
                      "and at every larger radius, and no candidate with p_global <= false_alarm (resolved by the "
-                     "calibration's simulations); size > 2 chi cos(alpha_min) / distance_per_size",
+                     "calibration's simulations); flat: size > 2 chi cos(alpha_min) / distance_per_size; spherical: "
+                     "chi/R < arctan(tan(d1/2) / cos(alpha_min)), size = R/chi",
                 injection_physics=physics)
     write_table(t, run.dir / BOUND, meta)
     return [t["statement"][0]]

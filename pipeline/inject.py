@@ -25,8 +25,9 @@ Spherical spaces (L(p,q), D*4n, T*, O*, I*)
     curvatures instead (one size each, chi / R from the background).  Skies are
     Gamma-invariant Sachs-Wolfe skies (twinring.topology.skies_spherical; the
     curvature radius in Mpc is chi times the size, for the spectral tilt), so
-    ``inject.physics`` must be ``sw``.  ``bound`` still reads sizes with the flat
-    formula: it does not yet turn a spherical campaign into a bound on Omega_k.
+    ``inject.physics`` must be ``sw``.  ``bound`` turns alpha_min of such a campaign
+    into chi/R < arctan(tan(d1 / 2) / cos(alpha_min)) and the matching Omega_k
+    (twinring.bound.spherical_limits).
 
 Visible pairs
     Only predicted pairs the configured search family can see count: back-to-back

@@ -106,3 +106,30 @@ def test_bound_needs_the_lower_limit_by_default():
     row = bound.bound_row(small, 0.95, 0.01, [], 2.0, 1.0, 13.9, "x")
     assert math.isnan(row["alpha_min_deg"])
     assert "59 of 59" in bound.statement(row)
+
+
+def test_spherical_bound_from_alpha_min():
+    # Cornish, Spergel & Starkman 1998: in a spherical space an image at distance d (in curvature radii R)
+    # makes circles with cos(alpha) = tan(d/2) / tan(chi/R). For the Poincare dodecahedral space I* the
+    # nearest images lie at pi/5 (Luminet et al. 2003, from memory); no circles above alpha_min = 10 deg
+    # excludes every chi/R above arctan(tan(pi/10) / cos 10 deg)
+    from twinring import cosmology
+    from twinring.config import config_from_dict
+
+    d1 = math.pi / 5
+    k, ok = bound.spherical_limits(10.0, d1)
+    assert math.tan(d1 / 2) / math.tan(k) == pytest.approx(math.cos(math.radians(10.0)), rel=1e-12)
+    cosmo = config_from_dict({"cosmology": {"omega_k": ok}}).cosmology
+    assert cosmology.chi_over_r(cosmo) == pytest.approx(k, rel=1e-6)
+    assert -0.5 < ok < 0
+    # flat limit: a tiny image distance (L(p,1), large p) gives the flat rule d = 2 chi cos(alpha_min)
+    small = 2 * math.pi / 400
+    k_small, _ = bound.spherical_limits(10.0, small)
+    assert small / k_small == pytest.approx(2 * math.cos(math.radians(10.0)), rel=1e-4)
+    # the statement speaks of chi/R and Omega_k, not of a flat size
+    n = np.full(2, 100)
+    rec = Table({"radius_deg": [10.0, 30.0], "n": n, "detected": n, "fraction": np.ones(2)})
+    row = bound.bound_row(rec, 0.95, 0.05, [], 2.0, d1, 13.9, "I*", geometry="spherical", n_sims=99)
+    assert row["chi_over_r_max"] == pytest.approx(k) and row["size_chi"] == pytest.approx(1 / k)
+    text = bound.statement(row)
+    assert "chi/R <" in text and "Omega_k >" in text
