@@ -602,8 +602,24 @@ def summarize(run_dir, cfg=None, figures=()):
     if bnd is not None and len(bnd):
         out["bound"] = _row_dict(bnd[0], ("space", "alpha_min_deg", "size_chi", "size_gpc", "chi_gpc",
                                           "recovery_level", "false_alarm", "n_significant", "statement"))
+    _inputs_and_consistency(out, d, cand, peaks, thr)
     out["headline"] = headline(out)
     return out
+
+
+INPUT_KEYS = ("map_unit", "map_frame", "map_field", "map_ordering")
+
+
+def _inputs_and_consistency(out, d, *tables):
+    """Hook: the input map's unit, frame, field (from the tables' provenance) and a several-map comparison."""
+    from .consistency import summary as consistency_summary
+
+    meta = next((t.meta for t in tables if t is not None and "map_unit" in t.meta), None)
+    if meta is not None:
+        out["input"] = {k[len("map_"):]: meta.get(k) for k in INPUT_KEYS}
+    c = consistency_summary(d)
+    if c is not None:
+        out["consistency"] = c
 
 
 def _pair_text(b):
@@ -636,6 +652,8 @@ def headline(s) -> str:
     if "bound" in s:
         return s["bound"]["statement"]
     b = s.get("best_candidate")
+    if b is None and "consistency" in s:
+        return consistency_headline(s["consistency"])
     if b is not None and "significant" in b:
         return (f"No significant circle pair; the first-ranked, {_pair_text(b)}, has {_p_sentence(b, n, floor)} "
                 "(not significant).")
@@ -645,6 +663,47 @@ def headline(s) -> str:
     if b is not None:
         return (f"Best circle pair: {_pair_text(b)} (not calibrated: run `twinring calibrate` for p-values).")
     return "No search results in this directory."
+
+
+def consistency_headline(c) -> str:
+    k = len(c["maps"])
+    every = sum(r["n_maps_significant"] == k for r in c["rows"])
+    some = sum(r["n_maps_significant"] > 0 for r in c["rows"])
+    found = sum(r["n_maps_found"] == k for r in c["rows"])
+    if every:
+        return f"Matched circles significant in all {k} maps: {every} pair{'s' if every != 1 else ''}."
+    return (f"Several maps ({k}): no circle pair significant in every map ({some} significant in some map; "
+            f"{found} of the {len(c['rows'])} top pairs found in every map).")
+
+
+def consistency_markdown(c) -> list:
+    """The several-map paragraph and table of summary.md."""
+    names = c["maps"]
+    lines = ["", "## Several maps", "",
+             f"The same preparation, search and calibration ran on {len(names)} maps (each in maps/<name>/, with its "
+             f"own summary). The top {c['top']} candidates of every map were matched across the maps (same sense, "
+             f"radius within {c['radius_tol_deg']:g} deg, centres within {c['centre_tol_deg']:.2f} deg in either "
+             "order); consistency.ecsv has every row. A pair seen in one map only is a property of that map "
+             "(its noise or foreground residuals), not of the sky.", ""]
+    for n in names:
+        i = c["inputs"][n]
+        lines.append(f"- {n}: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}, "
+                     f"N = {i['n_sims'] or 'not calibrated'}, sha256 {i['sha256']}")
+    lines += ["", "| pair | radius [deg] | flip | found in | significant in | "
+              + " | ".join(f"{n}: S_grid, p_global" for n in names) + " |",
+              "|---" * (5 + len(names)) + "|"]
+    for r in c["rows"]:
+        cells = []
+        for n in names:
+            m = r["maps"][n]
+            cells.append("—" if not np.isfinite(m["s_grid"]) else
+                         f"{m['s_grid']:.3f}, {_fmt(m['p_global']) if np.isfinite(m['p_global']) else 'n/a'}"
+                         + (" *" if m["significant"] else ""))
+        lines.append(f"| {r['pair']} | {r['radius_deg']:.1f} | {str(r['flip']).lower()} | {r['n_maps_found']} | "
+                     f"{r['n_maps_significant']} | " + " | ".join(cells) + " |")
+    lines.append("")
+    lines.append("(* significant in that map; — not among that map's candidates)")
+    return lines
 
 
 def summary_markdown(s) -> str:
@@ -679,6 +738,11 @@ def summary_markdown(s) -> str:
                       f" at radius {b['radius_deg']:.2f} deg, centres ({b['lon1_deg']:.1f}, {b['lat1_deg']:.1f}) and "
                       f"({b['lon2_deg']:.1f}, {b['lat2_deg']:.1f}), twist {format_twist(b['twist_deg'])} deg, "
                       f"flip {str(b['flip']).lower()}{extra}"]
+    if "input" in s:
+        i = s["input"]
+        lines.append(f"- input map: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}")
+    if "consistency" in s:
+        lines += consistency_markdown(s["consistency"])
     if "recovery" in s:
         lines += ["", "| radius [deg] | size [chi] | recovered | 95 % interval |", "|---|---|---|---|"]
         for r in s["recovery"]:
