@@ -156,3 +156,21 @@ def test_bad_inputs_one_line(skies, capsys, paths, extra, what):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and what in err[0] and "Traceback" not in err[0]
     assert not (skies / "run_bad").exists()
+
+
+def test_stage_commands_iterate_over_the_maps(skies, capsys):
+    """`twinring search`, then `calibrate`, then `report` on a map.paths config: the same tables as `run`."""
+    cfg = _config(skies, "[method_a.fits, method_b.fits]", "cmds")
+    out = skies / "cmds_out"
+    assert cli.main(["search", str(cfg), "--out", str(out)]) == 0
+    t = Table.read(out / "consistency.ecsv", format="ascii.ecsv")
+    faces = _face_rows(t, ["method_a", "method_b"])
+    assert all(r["n_maps_found"] == 2 and not np.isfinite(r["p_global_method_a"]) for r in faces)   # not calibrated
+    assert all(r["n_maps_significant"] == 0 for r in faces)
+    assert cli.main(["calibrate", str(cfg), "--out", str(out)]) == 0
+    t = Table.read(out / "consistency.ecsv", format="ascii.ecsv")
+    assert all(r["n_maps_significant"] == 2 for r in _face_rows(t, ["method_a", "method_b"]))
+    assert cli.main(["search", str(cfg), "--out", str(out / "x"), "--shard", "1/2"]) == 2
+    capsys.readouterr()
+    assert cli.main(["report", str(out)]) == 0
+    assert "Matched circles significant in all 2 maps" in capsys.readouterr().out
