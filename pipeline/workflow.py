@@ -52,7 +52,8 @@ from pathlib import Path
 from .config import InputError, load_config
 
 MANIFEST = "stages.json"
-ORDER = ("sky", "prepare", "search", "calibrate", "consistency", "inject", "bound", "report")   # exclude: after bound (planned_stages)
+ORDER = ("sky", "prepare", "search", "calibrate", "inject", "bound", "report")
+# exclude: after bound; consistency: after calibrate, with map.paths only (both placed by planned_stages)
 
 SECTIONS_READ = {
     "sky": ("topology", "sky", "cosmology"),

@@ -113,6 +113,10 @@ def test_two_noise_realisations_of_one_torus_agree(skies, capsys):
     # a map's own summary names its input unit, frame and field
     own = (out / "maps" / "method_a" / "summary.md").read_text()
     assert "input map: unit" in own and "frame G" in own
+    # a rerun with nothing changed skips every stage (stage keys cover every map's checksum)
+    status = run_workflow(load_config(cfg), echo=lambda *a: None)
+    assert set(status) == {"prepare", "search", "calibrate", "consistency", "report"}
+    assert set(status.values()) == {"skipped"}
 
 
 def test_torus_and_isotropic_map_disagree(skies):
