@@ -240,3 +240,48 @@ def summary(run_dir) -> dict | None:
         inputs[n]["sha256"] = t.meta.get(f"sha256_map_{n}")
     return {"maps": names, "top": t.meta.get("top"), "centre_tol_deg": t.meta.get("centre_tol_deg"),
             "radius_tol_deg": t.meta.get("radius_tol_deg"), "rows": rows, "inputs": inputs}
+
+
+# --------------------------------------------------------------------------- what the report shows
+def headline(c) -> str:
+    k = len(c["maps"])
+    every = sum(r["n_maps_significant"] == k for r in c["rows"])
+    some = sum(r["n_maps_significant"] > 0 for r in c["rows"])
+    found = sum(r["n_maps_found"] == k for r in c["rows"])
+    if every:
+        return f"Matched circles significant in all {k} maps: {every} pair{'s' if every != 1 else ''}."
+    if not any(i.get("n_sims") for i in c["inputs"].values()):
+        return (f"Several maps ({k}), not calibrated: {found} of the {len(c['rows'])} top circle pairs found in every "
+                "map (run `twinring calibrate` for p-values).")
+    return (f"Several maps ({k}): no circle pair significant in every map ({some} significant in some map; "
+            f"{found} of the {len(c['rows'])} top pairs found in every map).")
+
+
+def markdown(c) -> list:
+    """The several-map paragraph and table of summary.md."""
+    names = c["maps"]
+    lines = ["", "## Several maps", "",
+             f"The same preparation, search and calibration ran on {len(names)} maps (each in maps/<name>/, with its "
+             f"own summary). The top {c['top']} candidates of every map were matched across the maps (same sense, "
+             f"radius within {c['radius_tol_deg']:g} deg, centres within {c['centre_tol_deg']:.2f} deg in either "
+             "order); consistency.ecsv has every row. A pair seen in one map only is a property of that map "
+             "(its noise or foreground residuals), not of the sky.", ""]
+    for n in names:
+        i = c["inputs"][n]
+        lines.append(f"- {n}: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}, "
+                     f"N = {i['n_sims'] or 'not calibrated'}, sha256 {i['sha256']}")
+    lines += ["", "| pair | radius [deg] | flip | found in | significant in | "
+              + " | ".join(f"{n}: S_grid, p_global" for n in names) + " |",
+              "|---" * (5 + len(names)) + "|"]
+    for r in c["rows"]:
+        cells = []
+        for n in names:
+            m = r["maps"][n]
+            cells.append("—" if not np.isfinite(m["s_grid"]) else
+                         f"{m['s_grid']:.3f}, " + (f"{m['p_global']:.3g}" if np.isfinite(m["p_global"]) else "n/a")
+                         + (" *" if m["significant"] else ""))
+        lines.append(f"| {r['pair']} | {r['radius_deg']:.1f} | {str(r['flip']).lower()} | {r['n_maps_found']} | "
+                     f"{r['n_maps_significant']} | " + " | ".join(cells) + " |")
+    lines.append("")
+    lines.append("(* significant in that map; — not among that map's candidates)")
+    return lines

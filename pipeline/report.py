@@ -653,6 +653,8 @@ def headline(s) -> str:
         return s["bound"]["statement"]
     b = s.get("best_candidate")
     if b is None and "consistency" in s:
+        from .consistency import headline as consistency_headline
+
         return consistency_headline(s["consistency"])
     if b is not None and "significant" in b:
         return (f"No significant circle pair; the first-ranked, {_pair_text(b)}, has {_p_sentence(b, n, floor)} "
@@ -663,47 +665,6 @@ def headline(s) -> str:
     if b is not None:
         return (f"Best circle pair: {_pair_text(b)} (not calibrated: run `twinring calibrate` for p-values).")
     return "No search results in this directory."
-
-
-def consistency_headline(c) -> str:
-    k = len(c["maps"])
-    every = sum(r["n_maps_significant"] == k for r in c["rows"])
-    some = sum(r["n_maps_significant"] > 0 for r in c["rows"])
-    found = sum(r["n_maps_found"] == k for r in c["rows"])
-    if every:
-        return f"Matched circles significant in all {k} maps: {every} pair{'s' if every != 1 else ''}."
-    return (f"Several maps ({k}): no circle pair significant in every map ({some} significant in some map; "
-            f"{found} of the {len(c['rows'])} top pairs found in every map).")
-
-
-def consistency_markdown(c) -> list:
-    """The several-map paragraph and table of summary.md."""
-    names = c["maps"]
-    lines = ["", "## Several maps", "",
-             f"The same preparation, search and calibration ran on {len(names)} maps (each in maps/<name>/, with its "
-             f"own summary). The top {c['top']} candidates of every map were matched across the maps (same sense, "
-             f"radius within {c['radius_tol_deg']:g} deg, centres within {c['centre_tol_deg']:.2f} deg in either "
-             "order); consistency.ecsv has every row. A pair seen in one map only is a property of that map "
-             "(its noise or foreground residuals), not of the sky.", ""]
-    for n in names:
-        i = c["inputs"][n]
-        lines.append(f"- {n}: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}, "
-                     f"N = {i['n_sims'] or 'not calibrated'}, sha256 {i['sha256']}")
-    lines += ["", "| pair | radius [deg] | flip | found in | significant in | "
-              + " | ".join(f"{n}: S_grid, p_global" for n in names) + " |",
-              "|---" * (5 + len(names)) + "|"]
-    for r in c["rows"]:
-        cells = []
-        for n in names:
-            m = r["maps"][n]
-            cells.append("—" if not np.isfinite(m["s_grid"]) else
-                         f"{m['s_grid']:.3f}, {_fmt(m['p_global']) if np.isfinite(m['p_global']) else 'n/a'}"
-                         + (" *" if m["significant"] else ""))
-        lines.append(f"| {r['pair']} | {r['radius_deg']:.1f} | {str(r['flip']).lower()} | {r['n_maps_found']} | "
-                     f"{r['n_maps_significant']} | " + " | ".join(cells) + " |")
-    lines.append("")
-    lines.append("(* significant in that map; — not among that map's candidates)")
-    return lines
 
 
 def summary_markdown(s) -> str:
@@ -742,6 +703,8 @@ def summary_markdown(s) -> str:
         i = s["input"]
         lines.append(f"- input map: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}")
     if "consistency" in s:
+        from .consistency import markdown as consistency_markdown
+
         lines += consistency_markdown(s["consistency"])
     if "recovery" in s:
         lines += ["", "| radius [deg] | size [chi] | recovered | 95 % interval |", "|---|---|---|---|"]

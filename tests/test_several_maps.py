@@ -171,6 +171,8 @@ def test_stage_commands_iterate_over_the_maps(skies, capsys):
     faces = _face_rows(t, ["method_a", "method_b"])
     assert all(r["n_maps_found"] == 2 and not np.isfinite(r["p_global_method_a"]) for r in faces)   # not calibrated
     assert all(r["n_maps_significant"] == 0 for r in faces)
+    assert cli.main(["report", str(out)]) == 0
+    assert "not calibrated" in capsys.readouterr().out
     assert cli.main(["calibrate", str(cfg), "--out", str(out)]) == 0
     t = Table.read(out / "consistency.ecsv", format="ascii.ecsv")
     assert all(r["n_maps_significant"] == 2 for r in _face_rows(t, ["method_a", "method_b"]))
