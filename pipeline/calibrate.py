@@ -1057,6 +1057,10 @@ def cmd_calibrate(args):
     cfg = load_run_config(args)
     if cfg.calibrate.spectrum == "file":
         file_spectrum(cfg.calibrate.spectrum_file, int(cfg.prepare.lmax))
+    if cfg.map.paths:                           # several maps: each in maps/<name>/ (stages.for_each_map)
+        from .stages import calibrate_maps
+
+        return calibrate_maps(cfg, args)
     shard = None
     if getattr(args, "shard", None):
         from .execute import parse_shard

@@ -42,6 +42,8 @@ def is_pow2(n: int) -> bool:
 @dataclass(frozen=True)
 class MapSection:
     path: str | None = _f(None, "path?")
+    # several maps (a list or a glob, relative to the config), each prepared, searched and calibrated alike
+    paths: tuple | None = _f(None, "paths?")
     # a 0-based column index or a column name (TTYPE: I_STOKES, TEMPERATURE, ...)
     field: int | str = _f(0, "field")
     mask: str | None = _f(None, "path?")
@@ -51,7 +53,9 @@ class MapSection:
     allow_polarisation: bool = _f(False, "bool")
 
     def check(self, where):
-        pass
+        if self.path and self.paths:
+            raise where("paths", list(self.paths), "null when map.path is given (map.path: one map; map.paths: "
+                        "several maps; exactly one of them)")
 
 
 @dataclass(frozen=True)
@@ -361,6 +365,21 @@ class ExcludeSection:
 
 
 @dataclass(frozen=True)
+class ConsistencySection:
+    """Matching the top candidates of several maps (map.paths) across the maps (pipeline/consistency.py)."""
+    # top candidates of each map to match across the maps; null = report.circles
+    top: int | None = _f(None, "int?", min=1, max=1000)
+    # centres (in either order) within this angle [deg]; null = centre_steps centre-grid steps
+    centre_tol_deg: float | None = _f(None, "float?", min=0.0, max=180.0, open_min=True)
+    centre_steps: float = _f(2.0, "float", min=0.0, max=50.0, open_min=True)
+    # radii within this [deg]; null = the radius step of search.radius_deg
+    radius_tol_deg: float | None = _f(None, "float?", min=0.0, max=90.0, open_min=True)
+
+    def check(self, where):
+        pass
+
+
+@dataclass(frozen=True)
 class ReportSection:
     """Figures and summary (pipeline/report.py)."""
     circles: int = _f(3, "int", min=0, max=50)
@@ -384,6 +403,7 @@ SECTIONS = {
     "bound": BoundSection,
     "report": ReportSection,
     "exclude": ExcludeSection,
+    "consistency": ConsistencySection,
 }
 
 
@@ -402,6 +422,7 @@ class RunConfig:
     bound: BoundSection = field(default_factory=BoundSection)
     report: ReportSection = field(default_factory=ReportSection)
     exclude: ExcludeSection = field(default_factory=ExcludeSection)
+    consistency: ConsistencySection = field(default_factory=ConsistencySection)
     source: str = ""          # the file the config came from (not a YAML key)
     present: tuple = ()       # the sections the YAML file named
 

@@ -26,6 +26,8 @@ HELP = {
     "map": {
         "allow_polarisation": "accept a Q/U/E/B column as the map (refused as temperature unless true)",
         "path": "HEALPix FITS map to search (temperature; unit read from TUNIT); null for a synthetic sky",
+        "paths": "several maps (list or glob) each prepared, searched and calibrated alike, in maps/<name>/, "
+                 "compared in consistency.ecsv; null = map.path",
         "field": "column (field) of the map file to read, 0 = the first",
         "mask": "HEALPix FITS mask, 1 = use and 0 = masked; null = no mask",
         "mask_field": "column (field) of the mask file to read",
@@ -165,6 +167,13 @@ HELP = {
     "report": {
         "circles": "top candidates drawn on the map and given a candidate figure",
         "dpi": "resolution of the figures [dots per inch]",
+    },
+    "consistency": {
+        "top": "top candidates of each map matched across the maps (map.paths); null = report.circles",
+        "centre_tol_deg": "largest angle between matched centres, in either order [deg]; null = centre_steps "
+                          "centre-grid steps",
+        "centre_steps": "centre tolerance in centre-grid steps (HEALPix resolution of search.nside_centers)",
+        "radius_tol_deg": "largest radius difference of matched pairs [deg]; null = the search's radius step",
     },
 }
 

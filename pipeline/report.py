@@ -602,8 +602,24 @@ def summarize(run_dir, cfg=None, figures=()):
     if bnd is not None and len(bnd):
         out["bound"] = _row_dict(bnd[0], ("space", "alpha_min_deg", "size_chi", "size_gpc", "chi_gpc",
                                           "recovery_level", "false_alarm", "n_significant", "statement"))
+    _inputs_and_consistency(out, d, cand, peaks, thr)
     out["headline"] = headline(out)
     return out
+
+
+INPUT_KEYS = ("map_unit", "map_frame", "map_field", "map_ordering")
+
+
+def _inputs_and_consistency(out, d, *tables):
+    """Hook: the input map's unit, frame, field (from the tables' provenance) and a several-map comparison."""
+    from .consistency import summary as consistency_summary
+
+    meta = next((t.meta for t in tables if t is not None and "map_unit" in t.meta), None)
+    if meta is not None:
+        out["input"] = {k[len("map_"):]: meta.get(k) for k in INPUT_KEYS}
+    c = consistency_summary(d)
+    if c is not None:
+        out["consistency"] = c
 
 
 def _pair_text(b):
@@ -636,6 +652,10 @@ def headline(s) -> str:
     if "bound" in s:
         return s["bound"]["statement"]
     b = s.get("best_candidate")
+    if b is None and "consistency" in s:
+        from .consistency import headline as consistency_headline
+
+        return consistency_headline(s["consistency"])
     if b is not None and "significant" in b:
         return (f"No significant circle pair; the first-ranked, {_pair_text(b)}, has {_p_sentence(b, n, floor)} "
                 "(not significant).")
@@ -679,6 +699,13 @@ def summary_markdown(s) -> str:
                       f" at radius {b['radius_deg']:.2f} deg, centres ({b['lon1_deg']:.1f}, {b['lat1_deg']:.1f}) and "
                       f"({b['lon2_deg']:.1f}, {b['lat2_deg']:.1f}), twist {format_twist(b['twist_deg'])} deg, "
                       f"flip {str(b['flip']).lower()}{extra}"]
+    if "input" in s:
+        i = s["input"]
+        lines.append(f"- input map: unit {i['unit']}, frame {i['frame']}, field {i['field']}, ordering {i['ordering']}")
+    if "consistency" in s:
+        from .consistency import markdown as consistency_markdown
+
+        lines += consistency_markdown(s["consistency"])
     if "recovery" in s:
         lines += ["", "| radius [deg] | size [chi] | recovered | 95 % interval |", "|---|---|---|---|"]
         for r in s["recovery"]:

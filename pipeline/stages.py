@@ -41,8 +41,37 @@ def load_inputs(cfg):
     return prepared
 
 
+def for_each_map(cfg, args, stage, body, consistency=True):
+    """With ``map.paths``: ``body(map_cfg, map_run)`` on every map in ``<out>/maps/<name>/`` (its lines prefixed
+    by the map's name), then consistency.ecsv when every map has candidates.  Returns the closing lines."""
+    from .consistency import map_config, map_dir, map_list, write_consistency
+
+    maps = map_list(cfg)                    # every file exists and names are distinct before any output
+    if getattr(args, "shard", None):
+        raise InputError(f"{cfg.source}: --shard: found {args.shard} with map.paths; allowed: shards of one map "
+                         "(map.path), or no --shard")
+    run = open_run(cfg, args.out, args.force, stage)
+    lines = []
+    for name, path in maps:
+        mcfg = map_config(cfg, path)
+        mrun = open_run(mcfg, map_dir(run.dir, name), args.force, stage)
+        run.log(f"map {name}: {path}")
+        for line in body(mcfg, mrun):
+            mrun.log(line)
+            lines.append(f"[{name}] {line}")
+    if consistency and all((map_dir(run.dir, n) / "candidates.ecsv").exists() for n, _ in maps):
+        lines += write_consistency(cfg, run.dir, log=run.log)
+    run.finish(lines)
+    return 0
+
+
 def cmd_prepare(args):
     cfg = load_run_config(args)
+    if cfg.map.paths:
+        def body(mcfg, mrun):
+            p = prepared_for(mcfg, mrun)
+            return [f"prepared map: nside {p.nside}, lmax {p.lmax}, fwhm {p.fwhm_deg} deg"]
+        return for_each_map(cfg, args, "prepare", body, consistency=False)
     run = open_run(cfg, args.out, args.force, "prepare")
     p = prepared_for(cfg, run)
     run.finish([f"prepared map: nside {p.nside}, lmax {p.lmax}, fwhm {p.fwhm_deg} deg, "
@@ -91,6 +120,14 @@ def cmd_search(args):
     from .execute import parse_shard
 
     cfg = load_run_config(args)
+    if cfg.map.paths:
+        def body(mcfg, mrun):
+            stats = []
+            prepared = prepared_for(mcfg, mrun)
+            plan, pool, cand, peaks = search_prepared(mcfg, mrun, prepared,
+                                                      runner=merge_mod.chunk_runner(mcfg, mrun, stats))
+            return summary_lines(cand, pool, plan) + [s.line() for s in stats]
+        return for_each_map(cfg, args, "search", body)
     shard = parse_shard(getattr(args, "shard", None))
     prepared = load_inputs(cfg)                 # bad inputs fail before the output dir is touched
     run = open_run(cfg, args.out, args.force, "search")
@@ -105,6 +142,16 @@ def cmd_search(args):
     lines = summary_lines(cand, pool, plan) + [s.line() for s in stats]
     run.finish(lines)
     return 0
+
+
+def calibrate_maps(cfg, args):
+    """``twinring calibrate`` with map.paths: calibrate_run on every map's directory, then consistency.ecsv."""
+    from .calibrate import calibrate_run, load_data
+
+    def body(mcfg, mrun):
+        sky, prepared = load_data(mcfg)
+        return calibrate_run(mcfg, mrun, sky, prepared)
+    return for_each_map(cfg, args, "calibrate", body)
 
 
 def cmd_merge(args):

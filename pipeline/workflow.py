@@ -10,11 +10,18 @@ sky        synthetic map (sky.fits, mask.fits) and predicted circles    map.path
 prepare    prepared.fits                                               always
 search     candidates.ecsv, peaks.ecsv                                 always
 calibrate  thresholds.ecsv, null_peaks.ecsv; p-values in the tables    the config has a calibrate section
+consistency consistency.ecsv: top candidates matched across the maps   map.paths (several maps) is given
 inject     injections.ecsv, recovery.ecsv                              the config has an inject section
 bound      bound.ecsv                                                  inject runs or a bound section
 exclude    exclusion.ecsv (+ exclusion_summary.ecsv)                   the config has an exclude section
 report     fig_*.png, summary.md, summary.json                         always
 =========  ==========================================================  ===============================
+
+Several maps (``map.paths``): prepare, search and calibrate run on each map in
+its own run directory ``maps/<name>/`` (pipeline/consistency.py names them),
+with the same stage functions as one map; the consistency stage compares
+them and the report summarises every map and the comparison.  inject, bound
+and exclude need one map (``map.path``).
 
 For a synthetic run the stages read the sky stage's files: the resolved
 config stored in the run directory has ``map.path`` (and ``map.mask`` with
@@ -45,7 +52,8 @@ from pathlib import Path
 from .config import InputError, load_config
 
 MANIFEST = "stages.json"
-ORDER = ("sky", "prepare", "search", "calibrate", "inject", "bound", "report")   # exclude: after bound (planned_stages)
+ORDER = ("sky", "prepare", "search", "calibrate", "inject", "bound", "report")
+# exclude: after bound; consistency: after calibrate, with map.paths only (both placed by planned_stages)
 
 SECTIONS_READ = {
     "sky": ("topology", "sky", "cosmology"),
@@ -55,6 +63,7 @@ SECTIONS_READ = {
     "inject": ("inject", "topology", "sky", "cosmology"),
     "bound": ("bound", "cosmology"),
     "exclude": ("exclude", "topology", "search"),
+    "consistency": ("consistency", "report", "search"),
     "report": ("report",),
 }
 DEPENDS = {
@@ -62,16 +71,18 @@ DEPENDS = {
     "prepare": ("sky",),
     "search": ("prepare",),
     "calibrate": ("search",),
+    "consistency": ("search", "calibrate"),
     "inject": ("calibrate",),
     "bound": ("inject", "calibrate"),
     "exclude": ("bound",),
-    "report": ("sky", "prepare", "search", "calibrate", "inject", "bound", "exclude"),
+    "report": ("sky", "prepare", "search", "calibrate", "consistency", "inject", "bound", "exclude"),
 }
 OUTPUTS = {
     "sky": ("sky.fits", "circles.ecsv"),
     "prepare": ("prepared.fits", "prepared_alm.fits"),
     "search": ("candidates.ecsv", "peaks.ecsv"),
     "calibrate": ("thresholds.ecsv", "null_peaks.ecsv"),
+    "consistency": ("consistency.ecsv",),
     "inject": ("injections.ecsv", "recovery.ecsv"),
     "bound": ("bound.ecsv",),
     "exclude": ("exclusion.ecsv",),
@@ -83,6 +94,16 @@ def planned_stages(cfg) -> list:
     """The stages this config asks for, in order."""
     present = set(cfg.present)
     out = []
+    if cfg.map.paths:
+        from .consistency import map_list
+
+        map_list(cfg)                       # every file exists, names distinct: before any output is written
+        one = [s for s in ("inject", "bound", "exclude") if s in present]
+        if one:
+            raise InputError(f"{cfg.source}: {one[0]}: runs on one map; found map.paths (several maps); allowed: "
+                             f"map.path, or no {', '.join(one)} section")
+        out += ["prepare", "search"] + (["calibrate"] if "calibrate" in present else []) + ["consistency", "report"]
+        return out
     if not cfg.map.path:
         if not ({"sky", "topology"} & present):
             raise InputError(f"{cfg.source}: map.path: found null; allowed: a HEALPix FITS file, or a sky / "
@@ -111,7 +132,7 @@ def planned_stages(cfg) -> list:
 
 def effective_config(cfg, run_dir: Path):
     """The config the stages use: a synthetic run reads the sky stage's map and mask."""
-    if cfg.map.path:
+    if cfg.map.path or cfg.map.paths:
         return cfg
     sky = str(run_dir / "sky.fits")
     mask = str(run_dir / "mask.fits") if cfg.sky.mask == "demo" else cfg.map.mask
@@ -132,6 +153,10 @@ def stage_key(name, cfg, keys) -> str:
             "upstream": {u: keys.get(u) for u in DEPENDS[name]}}
     if name == "prepare":
         blob["inputs"] = {"map": _checksum(cfg.map.path), "mask": _checksum(cfg.map.mask)}
+        if cfg.map.paths:
+            from .consistency import map_list
+
+            blob["inputs"]["maps"] = {n: _checksum(p) for n, p in map_list(cfg)}
     if name == "search":
         blob["inputs"] = {"listed": _checksum(cfg.search.listed)}
     if name == "calibrate":
@@ -163,6 +188,10 @@ def _outputs(name, cfg):
     out = list(OUTPUTS[name])
     if name == "sky" and cfg.sky.mask == "demo":
         out.append("mask.fits")
+    if cfg.map.paths and name in PER_MAP:
+        from .consistency import MAPS_DIR, map_list
+
+        out = [f"{MAPS_DIR}/{n}/{f}" for n, _ in map_list(cfg) for f in out]
     return out
 
 
@@ -178,6 +207,7 @@ class _State:
     def __init__(self):
         self.prepared = None
         self.sky = None
+        self.maps = {}          # several maps: one _State per map name
 
 
 def _do_sky(cfg, run, state):
@@ -253,8 +283,60 @@ def _do_exclude(cfg, run, state):
     return exclude_run(cfg, run)
 
 
+def _do_consistency(cfg, run, state):
+    from .consistency import write_consistency
+
+    return write_consistency(cfg, run.dir)
+
+
 BODIES = {"sky": _do_sky, "prepare": _do_prepare, "search": _do_search, "calibrate": _do_calibrate,
-          "inject": _do_inject, "bound": _do_bound, "exclude": _do_exclude, "report": _do_report}
+          "consistency": _do_consistency, "inject": _do_inject, "bound": _do_bound, "exclude": _do_exclude,
+          "report": _do_report}
+PER_MAP = ("prepare", "search", "calibrate")      # with map.paths: run on every map, each in maps/<name>/
+
+
+def _per_map(name):
+    """The body of a per-map stage with map.paths: the one-map body on every map, in maps/<name>/."""
+    body = BODIES[name]
+
+    def each(cfg, run, state):
+        from .consistency import map_config, map_dir, map_list
+        from .rundir import open_run
+
+        lines = []
+        for mname, path in map_list(cfg):
+            mcfg = map_config(cfg, path)
+            mrun = open_run(mcfg, map_dir(run.dir, mname), True, name)
+            mstate = state.maps.setdefault(mname, _State())
+            run.log(f"map {mname}: {path}")
+            for line in body(mcfg, mrun, mstate):
+                mrun.log(line)
+                lines.append(f"[{mname}] {line}")
+        return lines
+    return each
+
+
+def _body(name, cfg):
+    if not cfg.map.paths:
+        return BODIES[name]
+    if name in PER_MAP:
+        return _per_map(name)
+    if name == "report":
+        return _report_maps
+    return BODIES[name]
+
+
+def _report_maps(cfg, run, state):
+    """Report of a several-map run: each map's own report in maps/<name>/, then the top-level summary."""
+    from .consistency import map_config, map_dir, map_list
+    from .report import make_report
+
+    lines = []
+    for mname, path in map_list(cfg):
+        s = make_report(map_dir(run.dir, mname), map_config(cfg, path))
+        lines.append(f"[{mname}] {s['headline']}")
+    s = make_report(run.dir, cfg, log=run.log)
+    return lines + [s["headline"]]
 
 
 # --------------------------------------------------------------------------- the command
@@ -283,7 +365,7 @@ def run_workflow(cfg, out=None, force=False, echo=print) -> dict:
         echo(f"[{name}] running")
         t0 = time.time()
         srun = open_run(ecfg, run_dir, True, name)
-        lines = BODIES[name](ecfg, srun, state)
+        lines = _body(name, ecfg)(ecfg, srun, state)
         dt = time.time() - t0
         for line in lines:
             srun.log(line)
