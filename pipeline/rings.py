@@ -119,21 +119,34 @@ def antipode_index(nside_centers):
     return hp.vec2pix(nside_centers, -v[:, 0], -v[:, 1], -v[:, 2])
 
 
-def synthesize_at(alm, lmax, vecs, nthreads=1, epsilon=1e-7):
-    """Evaluate a real map with harmonic coefficients ``alm`` (healpy order) at unit vectors."""
+def vec_to_loc(vecs):
+    """Colatitude and longitude (radians; (..., 2), longitude in [0, 2pi)) of unit vectors (..., 3)."""
     v = np.asarray(vecs, dtype=float).reshape(-1, 3)
     loc = np.empty((v.shape[0], 2))
     np.arccos(np.clip(v[:, 2], -1.0, 1.0), out=loc[:, 0])
     np.arctan2(v[:, 1], v[:, 0], out=loc[:, 1])
     loc[:, 1] %= 2 * np.pi
+    return loc.reshape(np.shape(vecs)[:-1] + (2,))
+
+
+def synthesize_loc(alm, lmax, loc, nthreads=1, epsilon=1e-7):
+    """Evaluate a real map with harmonic coefficients ``alm`` (healpy order) at (colatitude, longitude)
+    pairs ``loc`` (..., 2) in radians."""
+    shape = np.shape(loc)[:-1]
+    loc = np.ascontiguousarray(np.asarray(loc, dtype=np.float64).reshape(-1, 2))
     a = np.ascontiguousarray(np.asarray(alm, dtype=np.complex128).reshape(1, -1))
-    out = np.empty((1, v.shape[0]), dtype=np.float64)
-    if v.shape[0] == 0:
-        return out[0].reshape(np.shape(vecs)[:-1])
+    out = np.empty((1, loc.shape[0]), dtype=np.float64)
+    if loc.shape[0] == 0:
+        return out[0].reshape(shape)
     import ducc0
 
     ducc0.sht.synthesis_general(alm=a, spin=0, lmax=lmax, loc=loc, epsilon=epsilon, nthreads=nthreads, map=out)
-    return out[0].reshape(np.shape(vecs)[:-1])
+    return out[0].reshape(shape)
+
+
+def synthesize_at(alm, lmax, vecs, nthreads=1, epsilon=1e-7):
+    """Evaluate a real map with harmonic coefficients ``alm`` (healpy order) at unit vectors."""
+    return synthesize_loc(alm, lmax, vec_to_loc(vecs), nthreads=nthreads, epsilon=epsilon)
 
 
 def mask_at(mask, vecs):
@@ -146,11 +159,135 @@ def mask_at(mask, vecs):
     return mask[pix].astype(np.float32).reshape(np.shape(vecs)[:-1])
 
 
-def sample_rings(alm, lmax, centres, radius_rad, nsamp, other=None, mask=None, nthreads=1):
-    """Ring values (n, nsamp) and mask weights (n, nsamp) or None."""
+def sample_rings(alm, lmax, centres, radius_rad, nsamp, other=None, mask=None, nthreads=1, cache=True):
+    """Ring values (n, nsamp) and mask weights (n, nsamp) or None.
+
+    Reference-frame rings (``other=None``) take their sample coordinates from :func:`ring_locations`
+    (computed once per iso-latitude ring of centres and kept for later calls, ``cache=True``) and
+    their mask weights from :func:`ring_mask_weights`; with ``cache=False`` or a pair frame every
+    sample point is computed directly.
+    """
+    if other is None and cache:
+        loc = ring_locations(centres, radius_rad, nsamp)
+        vals = synthesize_loc(alm, lmax, loc, nthreads=nthreads)
+        return vals, ring_mask_weights(mask, centres, radius_rad, nsamp)
     pts = ring_points(centres, radius_rad, nsamp, other)
     vals = synthesize_at(alm, lmax, pts, nthreads=nthreads)
     return vals, mask_at(mask, pts)
+
+
+# --------------------------------------------------------------------------- geometry computed once
+# Reference-frame circles about centres of equal z away from the pole caps are turned copies of one
+# another about the z axis: the frame (c, e1 towards the north, e2) turns with the centre's longitude,
+# so every sample keeps its colatitude and gains the centre's longitude difference.  The colatitudes and
+# longitudes of one circle per iso-latitude ring are all that is computed (127 rings instead of 12,288
+# centres at nside_centers 32) and are kept per process: they depend only on the centres, the radius and
+# the samples per ring, the same for every chunk and every simulation.
+GEOMETRY_CACHE_MB = 256.0        # bound on the kept per-ring geometry and mask weights (per process)
+_GEOM_CACHE: dict = {}
+_GEOM_BYTES = [0]
+
+
+def _digest(*arrays):
+    import hashlib
+
+    h = hashlib.blake2b(digest_size=16)
+    for a in arrays:
+        a = np.ascontiguousarray(a)
+        h.update(repr((a.dtype.str, a.shape)).encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _cache_put(key, value, nbytes):
+    if nbytes > GEOMETRY_CACHE_MB * 1e6:
+        return value
+    while _GEOM_CACHE and _GEOM_BYTES[0] + nbytes > GEOMETRY_CACHE_MB * 1e6:
+        old = next(iter(_GEOM_CACHE))             # oldest first
+        _GEOM_BYTES[0] -= _GEOM_CACHE.pop(old)[1]
+    _GEOM_CACHE[key] = (value, nbytes)
+    _GEOM_BYTES[0] += nbytes
+    return value
+
+
+def clear_geometry_cache():
+    _GEOM_CACHE.clear()
+    _GEOM_BYTES[0] = 0
+
+
+def _centre_groups(centres):
+    """Iso-latitude groups: (representative index per group, group of each centre, longitude of each
+    centre minus its representative's); centres in the pole caps form groups of their own."""
+    c = unit(np.atleast_2d(centres))
+    n = c.shape[0]
+    polar = np.abs(c[:, 2]) > np.cos(np.radians(POLE_CAP_DEG))
+    z = np.where(polar, np.nan, c[:, 2])
+    order = np.argsort(z, kind="stable")
+    zs = z[order]
+    new = np.ones(n, dtype=bool)
+    new[1:] = ~(zs[1:] == zs[:-1])               # nan never equals: every polar centre starts a group
+    gid_sorted = np.cumsum(new) - 1
+    group = np.empty(n, dtype=np.int64)
+    group[order] = gid_sorted
+    rep = order[new]
+    lon = np.arctan2(c[:, 1], c[:, 0])
+    dlon = lon - lon[rep][group]
+    dlon[rep] = 0.0
+    return rep, group, dlon
+
+
+def ring_geometry(centres, radius_rad, nsamp):
+    """Per iso-latitude group: colatitude and longitude (radians) of the samples of the representative's
+    reference-frame circle, (g, nsamp) each, plus the group and longitude offset of every centre.
+
+    Returns ``(theta, phi, group, dlon)``; kept per process (see ``GEOMETRY_CACHE_MB``)."""
+    c = np.ascontiguousarray(np.atleast_2d(centres), dtype=float)
+    key = ("geom", _digest(c), float(radius_rad), int(nsamp))
+    hit = _GEOM_CACHE.get(key)
+    if hit is not None:
+        return hit[0]
+    rep, group, dlon = _centre_groups(c)
+    loc = vec_to_loc(ring_points(c[rep], radius_rad, nsamp))          # (g, nsamp, 2)
+    theta, phi = np.ascontiguousarray(loc[..., 0]), np.ascontiguousarray(loc[..., 1])
+    value = (theta, phi, group, dlon)
+    return _cache_put(key, value, theta.nbytes + phi.nbytes + group.nbytes + dlon.nbytes)
+
+
+def ring_locations(centres, radius_rad, nsamp):
+    """(n, nsamp, 2) colatitude and longitude (radians, longitude in [0, 2pi)) of the reference-frame
+    ring samples about ``centres``: the same points as :func:`ring_points` with ``other=None`` (to
+    rounding), from the per-ring geometry of :func:`ring_geometry`."""
+    theta, phi, group, dlon = ring_geometry(centres, radius_rad, nsamp)
+    n = group.size
+    loc = np.empty((n, int(nsamp), 2))
+    np.take(theta, group, axis=0, out=loc[..., 0])
+    lon = loc[..., 1]
+    np.add(phi[group], dlon[:, None], out=lon)
+    two_pi = 2 * np.pi
+    lon[lon < 0] += two_pi
+    lon[lon >= two_pi] -= two_pi
+    return loc
+
+
+def ring_mask_weights(mask, centres, radius_rad, nsamp):
+    """Mask weights (n, nsamp) float32 at the reference-frame ring samples (as :func:`mask_at` at
+    :func:`ring_points`), kept per process as bits when the mask is 0/1 (same mask, centres, radius,
+    samples)."""
+    if mask is None:
+        return None
+    c = np.ascontiguousarray(np.atleast_2d(centres), dtype=float)
+    m = np.asarray(mask)
+    binary = m.dtype == bool or bool(np.all((m == 0) | (m == 1)))
+    if not binary:
+        return mask_at(m, ring_points(c, radius_rad, nsamp))
+    key = ("mask", _digest(c), _digest(m > 0.5), float(radius_rad), int(nsamp))
+    hit = _GEOM_CACHE.get(key)
+    if hit is not None:
+        return np.unpackbits(hit[0], axis=-1, count=int(nsamp)).astype(np.float32)
+    w = mask_at(m, ring_points(c, radius_rad, nsamp))
+    packed = np.packbits(w > 0.5, axis=-1)
+    _cache_put(key, packed, packed.nbytes)
+    return w
 
 
 def _origin_angle(centre, other):
