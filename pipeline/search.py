@@ -376,37 +376,50 @@ def pair_statistics(plan: SearchPlan, items, oversample=8):
     items = list(items)
     if not items:
         return []
-    geo, pts = [], []
-    for c1, c2, radius_deg, _ in items:
-        alpha = math.radians(radius_deg)
-        nsamp = rings.samples_for(alpha, plan.lmax)
-        geo.append(nsamp)
-        pts.append(rings.ring_points(c1, alpha, nsamp).reshape(-1, 3))
-        pts.append(rings.ring_points(c2, alpha, nsamp).reshape(-1, 3))
+    groups = {}                                      # samples per ring -> item indices (one call per group)
+    for q, (_, _, radius_deg, _) in enumerate(items):
+        groups.setdefault(rings.samples_for(math.radians(radius_deg), plan.lmax), []).append(q)
+    pts, layout = [], []
+    for n, qs in groups.items():
+        alpha = np.array([math.radians(items[q][2]) for q in qs])
+        c1 = np.array([items[q][0] for q in qs], dtype=float).reshape(-1, 3)
+        c2 = np.array([items[q][1] for q in qs], dtype=float).reshape(-1, 3)
+        both = np.concatenate([_ring_points_radii(c1, alpha, n), _ring_points_radii(c2, alpha, n)])
+        pts.append(both.reshape(-1, 3))
+        layout.append((n, qs))
     allpts = np.concatenate(pts)
     vals = rings.synthesize_at(plan.alm, plan.lmax, allpts, nthreads=plan.threads, epsilon=REFINE_EPSILON)
     wts = rings.mask_at(plan.mask, allpts)
-    offs = np.concatenate([[0], np.cumsum([2 * n for n in geo])])
     out = [None] * len(items)
-    if wts is None:
-        by_n = {}
-        for q, n in enumerate(geo):
-            by_n.setdefault(n, []).append(q)
-        for n, qs in by_n.items():
-            v = np.stack([vals[offs[q]:offs[q + 1]].reshape(2, n) for q in qs])
-            res = [_curves(v[:, 0], v[:, 1], flip, plan.weighting, oversample) for flip in (False, True)]
+    off = 0
+    for n, qs in layout:
+        k = len(qs)
+        v = vals[off:off + 2 * k * n].reshape(2, k, n)
+        if wts is None:
+            res = [_curves(v[0], v[1], flip, plan.weighting, oversample) for flip in (False, True)]
             for row, q in enumerate(qs):
                 out[q] = [_best_twist(res[f][row]) for f in (0, 1)]
-        return out
-    for q, (n, item) in enumerate(zip(geo, items)):
-        v = vals[offs[q]:offs[q + 1]].reshape(2, n)
-        u = wts[offs[q]:offs[q + 1]].reshape(2, n)
-        min_valid = plan.min_valid_fraction if item[3] is None else float(item[3])
-        if min(u[0].mean(), u[1].mean()) < min_valid:
-            out[q] = [(-np.inf, 0.0), (-np.inf, 0.0)]
-            continue
-        out[q] = [_best_twist(s_curve(v[0], v[1], flip, plan.weighting, u[0], u[1])) for flip in (False, True)]
+        else:
+            u = wts[off:off + 2 * k * n].reshape(2, k, n)
+            for row, q in enumerate(qs):
+                min_valid = plan.min_valid_fraction if items[q][3] is None else float(items[q][3])
+                if min(u[0, row].mean(), u[1, row].mean()) < min_valid:
+                    out[q] = [(-np.inf, 0.0), (-np.inf, 0.0)]
+                    continue
+                out[q] = [_best_twist(s_curve(v[0, row], v[1, row], flip, plan.weighting, u[0, row], u[1, row]))
+                          for flip in (False, True)]
+        off += 2 * k * n
     return out
+
+
+def _ring_points_radii(centres, alpha, nsamp):
+    """:func:`twinring.rings.ring_points` (reference frame) for centres (k, 3) with a radius each (k,)."""
+    c = rings.unit(np.atleast_2d(centres))
+    e1, e2 = rings.phase_frame(c, None)
+    phi = 2 * np.pi * np.arange(nsamp) / nsamp
+    ca, sa = np.cos(alpha)[:, None, None], np.sin(alpha)[:, None, None]
+    cp, sp = np.cos(phi)[None, :, None], np.sin(phi)[None, :, None]
+    return ca * c[:, None, :] + sa * (cp * e1[:, None, :] + sp * e2[:, None, :])
 
 
 def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8, min_valid=None):
