@@ -155,3 +155,13 @@ def test_cached_rings_equal_uncached():
         vals0, wts0 = rings.sample_rings(alm, lmax, c, a, n, mask=mask, cache=False)
         assert np.array_equal(wts, wts0)
         np.testing.assert_allclose(vals, vals0, rtol=0, atol=1e-6 * vals0.std())
+        # the iso-latitude ring synthesis (exact, no interpolation) gives the same rings
+        iso = rings.iso_latitude_plan(c, a, n)
+        assert iso is not None
+        np.testing.assert_allclose(rings.synthesize_iso(alm, lmax, iso), v_direct, rtol=0, atol=1e-10 * v_direct.std())
+    # centres of unequal longitude spacing within a latitude have no iso-latitude plan
+    odd = c[[0, 1, 3]] if abs(c[0, 2] - c[3, 2]) < 1e-15 else c[np.flatnonzero(np.abs(c[:, 2] - c[20, 2]) < 1e-15)[[0, 1, 3]]]
+    assert rings.iso_latitude_plan(odd, np.radians(20.0), 32) is None
+    # the cost rule picks the ring synthesis for many points per ring and low lmax only
+    p64 = rings.iso_latitude_plan(rings.center_grid(64), np.radians(50.0), 216)
+    assert rings.iso_wins(128, p64) and not rings.iso_wins(383, p64)
