@@ -225,8 +225,9 @@ def _centre_groups(centres):
     c = unit(raw)
     n = c.shape[0]
     polar = np.abs(c[:, 2]) > np.cos(np.radians(POLE_CAP_DEG))
-    z = np.where(polar, np.nan, raw[:, 2] / np.linalg.norm(raw, axis=-1) if not np.allclose(
-        np.linalg.norm(raw, axis=-1), 1.0, rtol=0, atol=1e-12) else raw[:, 2])   # unit input: its own z, exactly
+    # unit input keeps its own z (normalising again would split a HEALPix ring in the last bit)
+    unit_input = np.allclose(np.linalg.norm(raw, axis=-1), 1.0, rtol=0, atol=1e-12)
+    z = np.where(polar, np.nan, raw[:, 2] if unit_input else c[:, 2])
     order = np.argsort(z, kind="stable")
     zs = z[order]
     new = np.ones(n, dtype=bool)

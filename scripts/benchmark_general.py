@@ -189,7 +189,7 @@ def main(argv=None):
 
     t_sim, sim_nside = time_one_simulation(prepared, args.threads)
     per_sim = t_sim + scan64
-    print(f"calibration: one simulation = sky + prepare {t_sim:.1f} s (sim_nside {sim_nside} by default for "
+    print(f"calibration: one simulation = sky + prepare {t_sim:.2f} s (sim_nside {sim_nside} by default for "
           f"prepare.nside 64, lmax 128) + grid scan {scan64 / 60:.1f} min (no refinement) = {per_sim / 60:.1f} min; "
           f"100 simulations = {100 * per_sim / 3600:.1f} h", flush=True)
 
