@@ -42,7 +42,8 @@ Spectra (``calibrate.spectrum``)
 * ``file``: a table with columns l and C_l in uK^2 (ECSV/FITS with columns
   named ``l``/``ell`` and ``cl``/``c_l``/``C_l``/``tt``, or two plain-text columns).
 
-Simulated maps are made at ``calibrate.sim_nside`` (0: the input map's Nside)
+Simulated maps are made at ``calibrate.sim_nside`` (0: what the prepared map
+needs, see :func:`sim_nside_for`)
 from a_lm up to ``prepare.lmax`` (no pixel window, like the prepared data),
 with white noise of ``noise_uk_arcmin`` uK-arcmin (per-pixel rms = level /
 pixel side in arcmin), and the data mask at that Nside.
@@ -351,6 +352,7 @@ class SimContext:
     n_sims: int = 0                # N: len(maps), else calibrate.simulations
     noise_text: str = ""           # what noise the simulations get (log, summary, provenance)
     variance_checksum: str | None = None   # sha256 of calibrate.noise_variance_map
+    compute: object = None         # ComputeSection (threads per simulation); not part of ``key``
 
 
 def sim_rng(seed, index) -> np.random.Generator:
@@ -406,7 +408,11 @@ def simulate_sky(ctx: SimContext, index) -> SkyMap:
 
 
 def grid_peaks(prepared, scfg, listed=None, key="", compute=None):
-    """Grid peaks of S (n_radii, 2) of a prepared map: the search's scan and combine, no refinement."""
+    """Grid peaks of S (n_radii, 2) of a prepared map: the search's scan and combine, no refinement.
+
+    ``compute``: the config's compute section; its ``threads`` (0 = 1) are used by the ring synthesis,
+    the twist FFTs and the screen (the grid peaks do not depend on the number of threads).
+    """
     plan = search_mod.make_plan(prepared, scfg, compute, listed, key=key)
     results = [search_mod.scan_chunk(plan, c) for c in plan.chunk_ids()]
     pool = search_mod.combine(plan, results)
@@ -415,10 +421,11 @@ def grid_peaks(prepared, scfg, listed=None, key="", compute=None):
 
 
 def null_peaks(ctx: SimContext, index) -> np.ndarray:
-    """Work unit: grid peaks (n_radii, 2) of simulation ``index``."""
+    """Work unit: grid peaks (n_radii, 2) of simulation ``index`` (``ctx.compute``: threads per unit)."""
     sky = simulate_sky(ctx, index)
-    prepared = prep_mod.prepare_map(sky, ctx.prep, input_bl=ctx.input_bl)
-    _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}")
+    threads = max(1, int(getattr(ctx.compute, "threads", 0) or 1))
+    prepared = prep_mod.prepare_map(sky, ctx.prep, nthreads=threads, input_bl=ctx.input_bl)
+    _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}", compute=ctx.compute)
     return np.asarray(pool.peak_s, float)
 
 
@@ -674,7 +681,18 @@ def best_global(table: Table):
 
 # --------------------------------------------------------------------------- the stage
 def sim_nside_for(cfg, sky_nside) -> int:
-    n = int(cfg.calibrate.sim_nside or sky_nside)
+    """Nside of the simulated maps: ``calibrate.sim_nside``, or by default what the prepared map needs.
+
+    The search sees only the prepared a_lm (l <= prepare.lmax) at ``prepare.nside``, so by default the
+    simulations are made at ``prepare.nside``, raised to the smallest power of two with
+    2 Nside >= prepare.lmax (where map2alm with its iterations is accurate), and never above the input
+    map's Nside (which the data itself was analysed from).
+    """
+    n = int(cfg.calibrate.sim_nside or 0)
+    if n == 0:
+        lmax = int(cfg.prepare.lmax)
+        need = max(int(cfg.prepare.nside), 1 << max(0, math.ceil(lmax / 2) - 1).bit_length())
+        n = min(int(sky_nside), need)
     if 3 * n - 1 < cfg.prepare.lmax:
         raise InputError(f"{cfg.source}: calibrate.sim_nside: found {n}; allowed: 0 or a power of two with "
                          f"3*sim_nside-1 >= prepare.lmax = {cfg.prepare.lmax}")
@@ -792,7 +810,11 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
             sigma, noise_text, var_sum = noise_for(cfg, nside)
     mask = None
     if np.any(sky.mask <= 0.5):
-        mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
+        if nside == int(prepared.nside) and nside != sky.nside and not cfg.prepare.mask_widen_fwhm:
+            # the data's own prepared mask (not when prepare widens masks: it would widen it twice)
+            mask = (np.asarray(prepared.mask) > 0.5).astype(float)
+        else:
+            mask = prep_mod.regrid_mask(sky.mask, nside, keep=0.5) if nside != sky.nside else (sky.mask > 0.5).astype(float)
     input_bl = prep_mod.read_beam_cached(cfg.prepare.input_beam, int(cfg.prepare.lmax)) if cfg.prepare.input_beam \
         else None
     h = hashlib.sha256()
@@ -817,7 +839,7 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
     ctx = SimContext(cl=cl, nside=nside, mask=mask, noise_sigma=sigma, prep=cfg.prepare, search=cfg.search,
                      listed=listed, seed=int(c.seed), frame=sky.frame, key=h.hexdigest()[:16], maps=tuple(maps),
                      noise_maps=tuple(noise_maps), map_section=cfg.map, input_bl=input_bl, n_sims=n_sims,
-                     noise_text=noise_text, variance_checksum=var_sum)
+                     noise_text=noise_text, variance_checksum=var_sum, compute=cfg.compute)
     return ctx
 
 

@@ -264,7 +264,7 @@ class CalibrateSection:
         if self.spectrum == "file" and not self.spectrum_file:
             raise where("spectrum_file", None, "a table of l, C_l [uK^2] when spectrum is 'file'")
         if self.sim_nside and not is_pow2(self.sim_nside):
-            raise where("sim_nside", self.sim_nside, "0 (the input map's Nside) or a power of two")
+            raise where("sim_nside", self.sim_nside, "0 (what the prepared map needs) or a power of two")
 
 
 @dataclass(frozen=True)

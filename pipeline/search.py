@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import healpy as hp
 from astropy.table import Table
+import scipy.fft
 from scipy.optimize import minimize
 
 from . import rings
@@ -331,38 +332,139 @@ def valid_fraction(plan: SearchPlan, c1, c2, radius_deg):
     return float(min(w[0].mean(), w[1].mean()))
 
 
+REFINE_EPSILON = 1e-10   # ducc0 accuracy of the off-grid synthesis: batched and single calls agree to ~1e-11
+
+
+def _curves(t1, t2, flip, weighting, oversample):
+    """S over ``N * oversample`` twists for rings (B, N) without masks (the Fourier form of
+    :func:`twinring.statistic.s_curve`, for a batch of pairs): (B, N * oversample)."""
+    from .statistic import m_weights
+
+    nsamp = t1.shape[-1]
+    w = m_weights(nsamp, weighting)
+    a1 = scipy.fft.rfft(t1, axis=-1)
+    a2 = scipy.fft.rfft(t2, axis=-1)
+    x = w * (a1 if flip else np.conj(a1)) * a2
+    den = np.sum(w * (np.abs(a1) ** 2 + np.abs(a2) ** 2), axis=-1)
+    n_out = nsamp * oversample
+    xp = np.zeros((t1.shape[0], n_out // 2 + 1), dtype=complex)
+    xp[:, : x.shape[1]] = x
+    if nsamp % 2 == 0:
+        xp[:, nsamp // 2] = 0
+    return 2 * np.real(scipy.fft.irfft(xp, n=n_out, axis=-1) * n_out / 2) / den[:, None]
+
+
+def _best_twist(curve):
+    """Best value of a periodic curve and its position (radians), refined by a parabola through the
+    best grid point and its neighbours."""
+    n_out = curve.size
+    kk = int(np.argmax(curve))
+    best = curve[kk]
+    ym, yp = curve[kk - 1], curve[(kk + 1) % n_out]
+    denom = ym - 2 * best + yp
+    delta = 0.5 * (ym - yp) / denom if denom < 0 else 0.0
+    return float(best), 2 * math.pi * (kk + delta) / n_out
+
+
+def pair_statistics(plan: SearchPlan, items, oversample=8):
+    """Best S over twist, per sense, for many pairs at any centres and radii, with one synthesis call.
+
+    ``items``: (c1, c2, radius_deg, min_valid) per pair (``min_valid`` None = ``plan.min_valid_fraction``).
+    Returns one ``[(s, twist_ref_rad) flip false, (s, twist_ref_rad) flip true]`` per item; a pair
+    whose rings have less than ``min_valid`` of their samples unmasked gets S = -inf.
+    """
+    items = list(items)
+    if not items:
+        return []
+    groups = {}                                      # samples per ring -> item indices (one call per group)
+    for q, (_, _, radius_deg, _) in enumerate(items):
+        groups.setdefault(rings.samples_for(math.radians(radius_deg), plan.lmax), []).append(q)
+    pts, layout = [], []
+    for n, qs in groups.items():
+        alpha = np.array([math.radians(items[q][2]) for q in qs])
+        c1 = np.array([items[q][0] for q in qs], dtype=float).reshape(-1, 3)
+        c2 = np.array([items[q][1] for q in qs], dtype=float).reshape(-1, 3)
+        both = np.concatenate([_ring_points_radii(c1, alpha, n), _ring_points_radii(c2, alpha, n)])
+        pts.append(both.reshape(-1, 3))
+        layout.append((n, qs))
+    allpts = np.concatenate(pts)
+    vals = rings.synthesize_at(plan.alm, plan.lmax, allpts, nthreads=plan.threads, epsilon=REFINE_EPSILON)
+    wts = rings.mask_at(plan.mask, allpts)
+    out = [None] * len(items)
+    off = 0
+    for n, qs in layout:
+        k = len(qs)
+        v = vals[off:off + 2 * k * n].reshape(2, k, n)
+        if wts is None:
+            res = [_curves(v[0], v[1], flip, plan.weighting, oversample) for flip in (False, True)]
+            for row, q in enumerate(qs):
+                out[q] = [_best_twist(res[f][row]) for f in (0, 1)]
+        else:
+            u = wts[off:off + 2 * k * n].reshape(2, k, n)
+            for row, q in enumerate(qs):
+                min_valid = plan.min_valid_fraction if items[q][3] is None else float(items[q][3])
+                if min(u[0, row].mean(), u[1, row].mean()) < min_valid:
+                    out[q] = [(-np.inf, 0.0), (-np.inf, 0.0)]
+                    continue
+                out[q] = [_best_twist(s_curve(v[0, row], v[1, row], flip, plan.weighting, u[0, row], u[1, row]))
+                          for flip in (False, True)]
+        off += 2 * k * n
+    return out
+
+
+def _ring_points_radii(centres, alpha, nsamp):
+    """:func:`twinring.rings.ring_points` (reference frame) for centres (k, 3) with a radius each (k,)."""
+    c = rings.unit(np.atleast_2d(centres))
+    e1, e2 = rings.phase_frame(c, None)
+    phi = 2 * np.pi * np.arange(nsamp) / nsamp
+    ca, sa = np.cos(alpha)[:, None, None], np.sin(alpha)[:, None, None]
+    cp, sp = np.cos(phi)[None, :, None], np.sin(phi)[None, :, None]
+    return ca * c[:, None, :] + sa * (cp * e1[:, None, :] + sp * e2[:, None, :])
+
+
 def pair_statistic(plan: SearchPlan, c1, c2, radius_deg, oversample=8, min_valid=None):
     """Best S over twist for one pair at any centres and radius: (s, twist_ref_rad) per sense.
 
     A pair whose rings have less than ``min_valid`` (default ``plan.min_valid_fraction``) of their
     samples unmasked gets S = -inf.
     """
-    min_valid = plan.min_valid_fraction if min_valid is None else float(min_valid)
-    alpha = math.radians(radius_deg)
-    nsamp = rings.samples_for(alpha, plan.lmax)
-    pts = np.concatenate([rings.ring_points(c1, alpha, nsamp), rings.ring_points(c2, alpha, nsamp)])
-    vals = rings.synthesize_at(plan.alm, plan.lmax, pts, nthreads=1)
-    wts = rings.mask_at(plan.mask, pts)
-    out = []
-    for flip in (False, True):
-        if wts is None:
-            curve = s_curve(vals[0], vals[1], flip, plan.weighting, oversample=oversample)
-            n_out = curve.size
-        else:
-            u1, u2 = wts[0], wts[1]
-            if min(u1.mean(), u2.mean()) < min_valid:
-                out.append((-np.inf, 0.0))
-                continue
-            curve = s_curve(vals[0], vals[1], flip, plan.weighting, u1, u2)
-            n_out = curve.size
-        kk = int(np.argmax(curve))
-        best = curve[kk]
-        # parabolic refinement of the twist between grid points
-        ym, yp = curve[kk - 1], curve[(kk + 1) % n_out]
-        denom = ym - 2 * best + yp
-        delta = 0.5 * (ym - yp) / denom if denom < 0 else 0.0
-        out.append((float(best), 2 * math.pi * (kk + delta) / n_out))
-    return out
+    return pair_statistics(plan, [(c1, c2, radius_deg, min_valid)], oversample)[0]
+
+
+class _Setup:
+    """One candidate's refinement: start, tangent bases, bounds and the map from offsets to circles."""
+
+    def __init__(self, plan, c1, c2, radius_deg, sense, antipodal):
+        self.c1, self.c2, self.radius_deg, self.sense, self.antipodal = c1, c2, radius_deg, int(sense), antipodal
+        self.v0 = max(plan.min_valid_fraction, valid_fraction(plan, c1, c2, radius_deg) - 1e-9)
+        self.u1, self.v1 = _tangent_basis(c1)
+        self.u2, self.v2 = _tangent_basis(c2)
+        self.step = plan.grid_deg
+        self.r_step = radius_step(plan)
+        # stay near the grid point and inside the searched radii: a refinement that wanders off to
+        # tiny circles finds spurious matches (a ring of a few pixels is all gradient)
+        self.r_lo = max(min(plan.radii_deg) - self.r_step, 0.5 * min(plan.radii_deg))
+        self.r_hi = min(max(plan.radii_deg) + self.r_step, 90.0)
+        self.n = 3 if antipodal else 5
+        self.x0 = np.zeros(self.n)
+        simplex = [self.x0]
+        scales = [0.5 * self.step, 0.5 * self.step, 0.5 * self.r_step, 0.5 * self.step, 0.5 * self.step][:self.n]
+        for d in range(self.n):
+            e = np.zeros(self.n)
+            e[d] = scales[d]
+            simplex.append(e)
+        self.simplex = np.array(simplex)
+        self.options = dict(initial_simplex=self.simplex, xatol=0.02, fatol=1e-4, maxfev=40 * self.n)
+
+    def unpack(self, x):
+        a = _offset(self.c1, self.u1, self.v1, x[0], x[1])
+        if self.antipodal:
+            return a, -a, self.radius_deg + x[2]
+        return a, _offset(self.c2, self.u2, self.v2, x[3], x[4]), self.radius_deg + x[2]
+
+    def outside(self, x, r):
+        return (not (self.r_lo <= r <= self.r_hi) or abs(x[2]) > 1.5 * self.r_step
+                or bool(np.any(np.abs(np.delete(x, 2)) > 1.5 * self.step)))
 
 
 def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
@@ -370,46 +472,159 @@ def refine_candidate(plan: SearchPlan, c1, c2, radius_deg, sense, antipodal):
 
     The refined pair keeps at least the unmasked fraction of the grid pair it starts from (and
     ``min_valid_fraction``): moving rings into the mask, where fewer samples count, would raise
-    S by chance alone.
+    S by chance alone.  One candidate at a time with scipy's Nelder-Mead; :func:`refine_candidates`
+    does the same for many candidates at once.
     """
-    v0 = max(plan.min_valid_fraction, valid_fraction(plan, c1, c2, radius_deg) - 1e-9)
-    u1, v1 = _tangent_basis(c1)
-    u2, v2 = _tangent_basis(c2)
-    step = plan.grid_deg
-    r_step = radius_step(plan)
-    # stay near the grid point and inside the searched radii: a refinement that wanders off to
-    # tiny circles finds spurious matches (a ring of a few pixels is all gradient)
-    r_lo = max(min(plan.radii_deg) - r_step, 0.5 * min(plan.radii_deg))
-    r_hi = min(max(plan.radii_deg) + r_step, 90.0)
-
-    def unpack(x):
-        a = _offset(c1, u1, v1, x[0], x[1])
-        if antipodal:
-            return a, -a, radius_deg + x[2]
-        return a, _offset(c2, u2, v2, x[3], x[4]), radius_deg + x[2]
+    st = _Setup(plan, c1, c2, radius_deg, sense, antipodal)
 
     def negs(x):
-        a, b, r = unpack(x)
-        if not (r_lo <= r <= r_hi) or abs(x[2]) > 1.5 * r_step or np.any(np.abs(np.delete(x, 2)) > 1.5 * step):
+        a, b, r = st.unpack(x)
+        if st.outside(x, r):
             return 2.0
-        return -pair_statistic(plan, a, b, r, min_valid=v0)[sense][0]
+        return -pair_statistic(plan, a, b, r, min_valid=st.v0)[st.sense][0]
 
-    n = 3 if antipodal else 5
-    x0 = np.zeros(n)
-    simplex = [x0]
-    scales = [0.5 * step, 0.5 * step, 0.5 * r_step, 0.5 * step, 0.5 * step][:n]
-    for d in range(n):
-        e = np.zeros(n)
-        e[d] = scales[d]
-        simplex.append(e)
-    res = minimize(negs, x0, method="Nelder-Mead",
-                   options=dict(initial_simplex=np.array(simplex), xatol=0.02, fatol=1e-4, maxfev=40 * n))
-    a, b, r = unpack(res.x)
-    s0 = -negs(x0)
+    res = minimize(negs, st.x0, method="Nelder-Mead", options=st.options)
+    a, b, r = st.unpack(res.x)
+    s0 = -negs(st.x0)
     if -res.fun < s0:   # never worse than the start
-        a, b, r = unpack(x0)
-    s, tw = pair_statistic(plan, a, b, r, min_valid=v0)[sense]
+        a, b, r = st.unpack(st.x0)
+    s, tw = pair_statistic(plan, a, b, r, min_valid=st.v0)[st.sense]
     return a, b, float(min(r, 90.0)), s, tw
+
+
+class _TooMany(Exception):
+    pass
+
+
+def nelder_mead_steps(initial_simplex, xatol, fatol, maxfev):
+    """scipy's Nelder-Mead (``scipy.optimize.minimize(method='Nelder-Mead')`` without bounds, not
+    adaptive; the same steps, tests and stopping rules) as a generator: it yields each point to be
+    evaluated and is sent the value; it returns ``(x, fun)``.  Lets many minimisations advance in
+    lockstep with their evaluations batched."""
+    rho, chi, psi, sigma = 1, 2, 0.5, 0.5
+    sim = np.asarray(initial_simplex, dtype=float).copy()
+    N = sim.shape[1]
+    calls = [0]
+
+    def f(x):
+        if calls[0] >= maxfev:
+            raise _TooMany
+        calls[0] += 1
+        v = yield np.copy(x)
+        return float(v)
+
+    fsim = np.full((N + 1,), np.inf, dtype=float)
+    try:
+        for k in range(N + 1):
+            fsim[k] = yield from f(sim[k])
+    except _TooMany:
+        pass
+    finally:
+        ind = np.argsort(fsim)
+        sim = np.take(sim, ind, 0)
+        fsim = np.take(fsim, ind, 0)
+    ind = np.argsort(fsim)
+    fsim = np.take(fsim, ind, 0)
+    sim = np.take(sim, ind, 0)
+    while calls[0] < maxfev:
+        try:
+            if (np.max(np.ravel(np.abs(sim[1:] - sim[0]))) <= xatol and
+                    np.max(np.abs(fsim[0] - fsim[1:])) <= fatol):
+                break
+            xbar = np.add.reduce(sim[:-1], 0) / N
+            xr = (1 + rho) * xbar - rho * sim[-1]
+            fxr = yield from f(xr)
+            doshrink = 0
+            if fxr < fsim[0]:
+                xe = (1 + rho * chi) * xbar - rho * chi * sim[-1]
+                fxe = yield from f(xe)
+                if fxe < fxr:
+                    sim[-1] = xe
+                    fsim[-1] = fxe
+                else:
+                    sim[-1] = xr
+                    fsim[-1] = fxr
+            else:
+                if fxr < fsim[-2]:
+                    sim[-1] = xr
+                    fsim[-1] = fxr
+                else:
+                    if fxr < fsim[-1]:
+                        xc = (1 + psi * rho) * xbar - psi * rho * sim[-1]
+                        fxc = yield from f(xc)
+                        if fxc <= fxr:
+                            sim[-1] = xc
+                            fsim[-1] = fxc
+                        else:
+                            doshrink = 1
+                    else:
+                        xcc = (1 - psi) * xbar + psi * sim[-1]
+                        fxcc = yield from f(xcc)
+                        if fxcc < fsim[-1]:
+                            sim[-1] = xcc
+                            fsim[-1] = fxcc
+                        else:
+                            doshrink = 1
+                    if doshrink:
+                        for j in range(1, N + 1):
+                            sim[j] = sim[0] + sigma * (sim[j] - sim[0])
+                            fsim[j] = yield from f(sim[j])
+        except _TooMany:
+            pass
+        ind = np.argsort(fsim)
+        sim = np.take(sim, ind, 0)
+        fsim = np.take(fsim, ind, 0)
+    return sim[0], float(np.min(fsim))
+
+
+def refine_candidates(plan: SearchPlan, starts, antipodal, progress=None):
+    """:func:`refine_candidate` for many grid candidates at once: the Nelder-Mead searches advance in
+    lockstep and every round evaluates all their trial pairs in one synthesis call.
+
+    ``starts``: (c1, c2, radius_deg, sense) per candidate.  Returns (c1, c2, radius_deg, s, twist_ref)
+    per candidate, as :func:`refine_candidate` would (to the synthesis accuracy ``REFINE_EPSILON``).
+    """
+    setups = [_Setup(plan, c1, c2, r, sense, antipodal) for c1, c2, r, sense in starts]
+    gens = [nelder_mead_steps(st.simplex, st.options["xatol"], st.options["fatol"], st.options["maxfev"])
+            for st in setups]
+    results = [None] * len(setups)
+    pending = {}
+
+    def advance(q, value, first=False):
+        st, gen = setups[q], gens[q]
+        try:
+            x = next(gen) if first else gen.send(value)
+            while True:
+                a, b, r = st.unpack(x)
+                if not st.outside(x, r):
+                    pending[q] = (a, b, r, st.v0)
+                    return
+                x = gen.send(2.0)
+        except StopIteration as stop:
+            results[q] = stop.value
+
+    for q in range(len(setups)):
+        advance(q, None, first=True)
+    rounds = 0
+    while pending:
+        qs = sorted(pending)
+        out = pair_statistics(plan, [pending[q] for q in qs])
+        pending.clear()
+        for q, o in zip(qs, out):
+            advance(q, -o[setups[q].sense][0])
+        rounds += 1
+    starts0 = pair_statistics(plan, [(*st.unpack(st.x0), st.v0) for st in setups])
+    chosen = []
+    for q, st in enumerate(setups):
+        x, fun = results[q]
+        s0 = starts0[q][st.sense][0]
+        chosen.append(st.unpack(st.x0) if -fun < s0 else st.unpack(x))   # never worse than the start
+    final = pair_statistics(plan, [(a, b, r, st.v0) for (a, b, r), st in zip(chosen, setups)])
+    out = []
+    for (a, b, r), st, f in zip(chosen, setups, final):
+        s, tw = f[st.sense]
+        out.append((a, b, float(min(r, 90.0)), s, tw))
+    return out
 
 
 # --------------------------------------------------------------------------- candidates
@@ -495,14 +710,20 @@ def finalize(plan: SearchPlan, pool: Pool, top: int, refine=True, progress=None)
     keep = suppress(c1, c2, rad, pool.s, ctol, rtol, limit=top + max(5, top // 5))
     antipodal = plan.family == "antipodal"
     rows = []
-    iterator = keep if progress is None else progress(keep, desc="refine", unit="cand")
-    for idx in iterator:
+    refined = None
+    if refine and keep.size:
+        # all candidates at once: one synthesis call per round of their Nelder-Mead steps
+        starts = [(c1[idx], c2[idx], float(rad[idx]), int(pool.sense[idx])) for idx in keep]
+        if progress is not None:
+            starts = list(progress(starts, desc="refine", unit="cand"))
+        refined = refine_candidates(plan, starts, antipodal)
+    for q, idx in enumerate(keep):
         sense = int(pool.sense[idx])
         ir = int(pool.radius_index[idx])
         beta_ref = 2 * math.pi * pool.k[idx] / plan.nsamp[ir]
         a, b, r, s_ref = c1[idx], c2[idx], float(rad[idx]), float(pool.s[idx])
-        if refine:
-            a, b, r, s_new, beta_new = refine_candidate(plan, a, b, r, sense, antipodal)
+        if refined is not None:
+            a, b, r, s_new, beta_new = refined[q]
             if s_new >= s_ref:
                 s_ref, beta_ref = s_new, beta_new
             else:

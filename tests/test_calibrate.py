@@ -342,3 +342,31 @@ def test_six_simulations_claim_nothing_on_a_masked_isotropic_sky(tmp_path, capsy
     thr = Table.read(tmp_path / "out" / "thresholds.ecsv")
     assert not np.any(thr["usable"])
     assert np.all(np.isnan(thr["s_threshold"])) and np.all(np.isnan(thr["s_threshold_global"]))
+
+
+def test_sim_nside_defaults_to_prepared_resolution():
+    # common practice, no source: map2alm is accurate for lmax <= 2 Nside; the search sees only l <= prepare.lmax
+    cfg = small_cfg()                                         # prepare.nside 32, lmax 64
+    assert cal.sim_nside_for(cfg, 2048) == 32                 # not the input Nside
+    up = config_from_dict({"prepare": {"nside": 64, "lmax": 64, "fwhm_deg": FWHM}})
+    assert cal.sim_nside_for(up, 32) == 32                    # never finer than the input map
+    fine = config_from_dict({"prepare": {"nside": 32, "lmax": 90, "fwhm_deg": FWHM}})
+    assert cal.sim_nside_for(fine, 2048) == 64                # 2 * 32 < 90: the next power of two
+    given = config_from_dict({"prepare": {"nside": 32, "lmax": 64, "fwhm_deg": FWHM}, "calibrate": {"sim_nside": 128}})
+    assert cal.sim_nside_for(given, 2048) == 128
+
+
+def test_simulation_threads_leave_peaks_unchanged(torus_setup):
+    # calibration passes compute.threads to the search plan; grid peaks do not depend on the thread count
+    cfg, prepared, ctx, model = torus_setup
+    two = config_from_dict({"prepare": {"nside": NSIDE, "lmax": LMAX, "fwhm_deg": FWHM},
+                            "search": {"nside_centers": 8, "radius_deg": [20, 80, 10], "refine": False},
+                            "compute": {"threads": 2, "progress": False}})
+    assert ctx.compute.threads == cfg.compute.threads
+    plan, pool2 = cal.grid_peaks(prepared, two.search, key="t2", compute=two.compute)
+    assert plan.threads == 2
+    _, pool1 = cal.grid_peaks(prepared, cfg.search, key="t1")
+    assert np.array_equal(pool1.peak_s, pool2.peak_s)
+    import dataclasses
+    p2 = cal.null_peaks(dataclasses.replace(ctx, compute=two.compute), 7)
+    assert np.array_equal(p2, cal.null_peaks(ctx, 7))

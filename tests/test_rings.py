@@ -110,3 +110,58 @@ def test_antipodes_and_twist_conversion():
         tw = rings.twist_from_reference(beta_ref, c1, c2, flip)
         pred = (tw - q1) if flip else (tw + q1)
         np.testing.assert_allclose(np.angle(np.exp(1j * (pred - q2))), 0, atol=1e-10)
+
+
+def test_cached_ring_geometry_equals_direct_points():
+    # iso-latitude reuse: the samples of every reference-frame circle, from one circle per HEALPix ring turned
+    # by the centre's longitude, are the directly computed points (astropy's unit-sphere conversion, 1e-12)
+    rings.clear_geometry_cache()
+    c = rings.center_grid(8)                      # 31 iso-latitude rings, the polar caps included
+    rep, group, _ = rings._centre_groups(c)
+    assert len(set(np.round(c[:, 2], 12))) <= rep.size < c.shape[0]
+    for radius_deg in (3.0, 41.0, 90.0):
+        a = np.radians(radius_deg)
+        n = rings.samples_for(a, 64)
+        loc = rings.ring_locations(c, a, n)
+        sc = SkyCoord(ra=loc[..., 1].ravel() * u.rad, dec=(np.pi / 2 - loc[..., 0].ravel()) * u.rad, frame="icrs")
+        got = sc.cartesian.xyz.value.T.reshape(-1, n, 3)
+        np.testing.assert_allclose(got, rings.ring_points(c, a, n), rtol=0, atol=1e-12)
+        assert np.all((loc[..., 1] >= 0) & (loc[..., 1] < 2 * np.pi))
+
+
+def test_cached_rings_equal_uncached():
+    # ring values and mask weights through the cache equal those at the directly computed points: the
+    # weights exactly, the values to 1e-10 of their rms at ducc0 accuracy 1e-12 (at the default 1e-7 the
+    # synthesis itself differs by up to ~1e-7 between coordinates that differ in the last bits)
+    rings.clear_geometry_cache()
+    lmax = 48
+    rng = np.random.default_rng(4)
+    alm = hp.synalm(1.0 / np.arange(1, lmax + 2) ** 2, lmax=lmax, new=True)
+    c = rings.center_grid(4)
+    mask = np.ones(hp.nside2npix(16))
+    mask[hp.query_disc(16, rings.unit(rng.normal(size=3)), np.radians(30.0))] = 0.0
+    for radius_deg in (7.0, 55.0):
+        a = np.radians(radius_deg)
+        n = rings.samples_for(a, lmax)
+        direct = rings.ring_points(c, a, n)
+        w_ref = rings.mask_at(mask, direct)
+        for _ in range(2):                         # first call fills the cache, the second reads it
+            w = rings.ring_mask_weights(mask, c, a, n)
+            assert np.array_equal(w, w_ref) and w.dtype == w_ref.dtype
+            v_direct = rings.synthesize_at(alm, lmax, direct, epsilon=1e-12)
+            v_cached = rings.synthesize_loc(alm, lmax, rings.ring_locations(c, a, n), epsilon=1e-12)
+            np.testing.assert_allclose(v_cached, v_direct, rtol=0, atol=1e-10 * v_direct.std())
+        vals, wts = rings.sample_rings(alm, lmax, c, a, n, mask=mask)
+        vals0, wts0 = rings.sample_rings(alm, lmax, c, a, n, mask=mask, cache=False)
+        assert np.array_equal(wts, wts0)
+        np.testing.assert_allclose(vals, vals0, rtol=0, atol=1e-6 * vals0.std())
+        # the iso-latitude ring synthesis (exact, no interpolation) gives the same rings
+        iso = rings.iso_latitude_plan(c, a, n)
+        assert iso is not None
+        np.testing.assert_allclose(rings.synthesize_iso(alm, lmax, iso), v_direct, rtol=0, atol=1e-10 * v_direct.std())
+    # centres of unequal longitude spacing within a latitude have no iso-latitude plan
+    odd = c[[0, 1, 3]] if abs(c[0, 2] - c[3, 2]) < 1e-15 else c[np.flatnonzero(np.abs(c[:, 2] - c[20, 2]) < 1e-15)[[0, 1, 3]]]
+    assert rings.iso_latitude_plan(odd, np.radians(20.0), 32) is None
+    # the cost rule picks the ring synthesis for many points per ring and low lmax only
+    p64 = rings.iso_latitude_plan(rings.center_grid(64), np.radians(50.0), 216)
+    assert rings.iso_wins(128, p64) and not rings.iso_wins(383, p64)

@@ -264,3 +264,21 @@ def test_survival_of_injected_pairs():
         ranks += [k["rank"] for k in kr]
     assert len(ranks) >= 15
     assert screen.survival_rate(ranks, 16) >= 0.99
+
+
+def test_reduced_screen_vectors_keep_inner_products_of_their_span():
+    # principal directions (numpy's SVD as the reference): vectors lying in a dim-dimensional subspace keep
+    # every inner product when projected on dim leading directions; fewer directions keep the largest part
+    rng = np.random.default_rng(8)
+    basis = np.linalg.qr(rng.normal(size=(40, 6)))[0]
+    F = (rng.normal(size=(300, 6)) @ basis.T).astype(np.float32)
+    F /= np.linalg.norm(F, axis=1, keepdims=True)
+    G = screen.reduce_features(F, dim=6)
+    assert G.shape == (300, 6)
+    np.testing.assert_allclose(G @ G.T, F @ F.T, atol=1e-5)
+    _, sv, vt = np.linalg.svd(F.astype(np.float64), full_matrices=False)
+    G3 = screen.reduce_features(F, dim=3)
+    ref = F.astype(np.float64) @ vt[:3].T
+    ref /= np.linalg.norm(ref, axis=1, keepdims=True)
+    np.testing.assert_allclose(G3 @ G3.T, ref @ ref.T, atol=1e-5)
+    assert screen.reduce_features(F, dim=0) is F and screen.reduce_features(F, dim=40) is F

@@ -224,3 +224,62 @@ def _retention_case(prepared, weighting):
         measured = np.mean([search.pair_statistic(plan, c1, -c1, FACE_DEG + sgn * 0.5 * dr)[1][0]
                             for sgn in (-1, 1)]) / s_true
         assert measured == pytest.approx(keep, abs=0.12), (weighting, dr, dc, delta, keep, measured)
+
+
+def test_nelder_mead_steps_follow_scipy():
+    # the lockstep Nelder-Mead takes scipy.optimize.minimize's steps exactly (Rosenbrock 1960 function,
+    # a shifted quadratic, and a run cut short by maxfev)
+    from scipy.optimize import minimize, rosen
+
+    def run(fun, simplex, **opt):
+        gen = search.nelder_mead_steps(simplex, opt["xatol"], opt["fatol"], opt["maxfev"])
+        x = next(gen)
+        try:
+            while True:
+                x = gen.send(fun(x))
+        except StopIteration as stop:
+            return stop.value
+
+    quad = lambda x: float(np.sum((x - np.array([0.3, -1.2, 2.0])) ** 2))
+    for fun, n, opt in ((rosen, 3, dict(xatol=1e-6, fatol=1e-8, maxfev=2000)),
+                        (quad, 3, dict(xatol=0.02, fatol=1e-4, maxfev=120)),
+                        (rosen, 5, dict(xatol=1e-8, fatol=1e-10, maxfev=37))):
+        simplex = np.vstack([np.zeros(n), 0.4 * np.eye(n)])
+        ref = minimize(fun, np.zeros(n), method="Nelder-Mead", options=dict(initial_simplex=simplex, **opt))
+        x, f = run(fun, simplex, **opt)
+        assert np.array_equal(x, ref.x) and f == ref.fun
+
+
+@pytest.mark.parametrize("masked", [False, True])
+def test_batched_refinement_equals_one_at_a_time(torus_sky, masked):
+    # all candidates' Nelder-Mead steps batched into one synthesis call per round give the same refined
+    # circles as scipy's Nelder-Mead one candidate at a time (1e-6); starts: torus face and edge pairs
+    # (CSS 1998 geometry) off the grid, in the general family, and chance pairs
+    import types
+    mask = None
+    if masked:
+        theta, _ = hp.pix2ang(64, np.arange(hp.nside2npix(64)))
+        mask = (np.abs(90 - np.degrees(theta)) > 15).astype(float)
+    p = types.SimpleNamespace(alm=torus_sky.alm, lmax=torus_sky.lmax, mask=mask, nside=64)
+    sc = SearchSection(family="general", nside_centers=8, radius_deg=(25.0, 80.0, 1.0), refine=True)
+    plan = search.make_plan(p, sc, key=f"batch-{masked}")
+    rng = np.random.default_rng(2)
+    x = rings.unit(np.array([1.0, 0.04, 0.03]))
+    e = rings.unit(np.array([1.0, 0.97, 0.05]))
+    starts = [(x, -rings.unit(x + [0.0, 0.03, -0.02]), FACE_DEG + 0.6, 1),
+              (e, -rings.unit(e + [0.02, 0.0, 0.02]), EDGE_DEG - 0.4, 1)]
+    for _ in range(3):
+        a, b = rings.unit(rng.normal(size=(2, 3)))
+        starts.append((a, b, float(rng.uniform(30, 70)), int(rng.integers(2))))
+    batched = search.refine_candidates(plan, starts, antipodal=False)
+    for st, got in zip(starts, batched):
+        ref = search.refine_candidate(plan, *st, antipodal=False)
+        np.testing.assert_allclose(got[0], ref[0], atol=1e-6)
+        np.testing.assert_allclose(got[1], ref[1], atol=1e-6)
+        assert got[2] == pytest.approx(ref[2], abs=1e-6) and got[3] == pytest.approx(ref[3], abs=1e-6)
+        assert got[4] == pytest.approx(ref[4], abs=1e-6) or not np.isfinite(ref[3])
+    assert batched[0][3] > 0.85 and batched[1][3] > 0.85
+    anti = search.refine_candidates(plan, [(x, -x, FACE_DEG + 0.6, 1)], antipodal=True)[0]
+    ref = search.refine_candidate(plan, x, -x, FACE_DEG + 0.6, 1, antipodal=True)
+    np.testing.assert_allclose(anti[0], ref[0], atol=1e-6)
+    assert anti[3] == pytest.approx(ref[3], abs=1e-6)
