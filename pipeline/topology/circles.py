@@ -89,16 +89,20 @@ UNITS = {"radius_deg": "deg", "lon1_deg": "deg", "lat1_deg": "deg", "lon2_deg": 
          "separation_deg": "deg", "twist_deg": "deg"}
 
 
-def predict_circles(space: Space, max_distance=2.0) -> Table:
-    """Astropy table of the predicted pairs (columns ``COLUMNS``; distance in units of chi)."""
-    rows = predict_pairs(space, max_distance)
+def circles_table(rows, meta) -> Table:
+    """The predicted pairs (dicts of :func:`predict_pairs`) as a table with ``COLUMNS``, units and ``meta``."""
     dtypes = (float, float, float, float, float, float, float, bool, str, float)
     t = Table(names=COLUMNS, dtype=dtypes) if not rows else Table(rows=[[r[c] for c in COLUMNS] for r in rows],
                                                                   names=COLUMNS, dtype=dtypes)
     for c, u in UNITS.items():
         t[c].unit = u
-    t.meta.update(space_meta(space))
+    t.meta.update(meta)
     return t
+
+
+def predict_circles(space: Space, max_distance=2.0) -> Table:
+    """Astropy table of the predicted pairs (columns ``COLUMNS``; distance in units of chi)."""
+    return circles_table(predict_pairs(space, max_distance), space_meta(space))
 
 
 def space_meta(space: Space) -> dict:

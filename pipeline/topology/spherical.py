@@ -460,18 +460,9 @@ def predict_pairs(space: SphericalSpace):
 
 def predict_circles(space: SphericalSpace):
     """Astropy table with the flat predictions' columns; chi/R and the group in the metadata."""
-    from astropy.table import Table
+    from .circles import circles_table
 
-    from .circles import COLUMNS, UNITS
-
-    rows = predict_pairs(space)
-    dtypes = (float, float, float, float, float, float, float, bool, str, float)
-    t = Table(names=COLUMNS, dtype=dtypes) if not rows else Table(rows=[[r[c] for c in COLUMNS] for r in rows],
-                                                                  names=COLUMNS, dtype=dtypes)
-    for c, u in UNITS.items():
-        t[c].unit = u
-    t.meta.update(space_meta(space))
-    return t
+    return circles_table(predict_pairs(space), space_meta(space))
 
 
 def space_meta(space: SphericalSpace) -> dict:
