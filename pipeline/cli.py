@@ -17,6 +17,7 @@ import importlib
 import os
 import sys
 import time
+import warnings
 
 
 def _config_arg(p):
@@ -152,6 +153,9 @@ def main(argv=None) -> int:
     # loky's resource tracker (a child process that shares our stderr) warns about semaphores it
     # cleans up after a SIGTERM to the whole process group; the one line we print says it all
     os.environ.setdefault("PYTHONWARNINGS", "ignore::UserWarning:joblib.externals.loky.backend.resource_tracker")
+    # loky replaces a worker whose memory grew (its leak guard) and says so; the unit is rerun and the
+    # results are unaffected, so the console keeps to what the run itself reports
+    warnings.filterwarnings("ignore", message="A worker stopped while some jobs were given", category=UserWarning)
     import signal
 
     from .config import InputError
