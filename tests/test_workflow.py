@@ -146,8 +146,9 @@ def test_stage_commands_and_bad_inputs(tmp_path, capsys):
 def test_acceptance_full_size(tmp_path):
     # the done-when: Nside 64, 3 deg beam, antipodal pairs, nside_centers 32, radii 30-80 deg, 40
     # simulations with spectrum: data.  A cubic torus with face circles at 40 deg (CSS 1998: L = 2 cos 40 deg chi)
-    # has p_global < 0.05; an isotropic sky (E18, simply connected) has p_global > 0.01; 1 % thresholds are
-    # higher below 40 deg than above 60 deg (common practice, no source).  About 10 minutes per sky on 2 cores.
+    # has p_global = 1/41 (beyond every simulation: the Monte Carlo floor); an isotropic sky (E18, simply connected)
+    # has p_global > 0.05; 5 % thresholds (the smallest rate 40 simulations resolve here) are higher below 40 deg
+    # than above 60 deg (common practice, no source).  A few minutes per sky on 2 cores.
     common = {"prepare": {"nside": 64, "lmax": 128, "fwhm_deg": 3.0},
               "search": {"family": "antipodal", "nside_centers": 32, "radius_deg": [30, 80, 1]},
               "calibrate": {"simulations": 40, "spectrum": "data"},
@@ -163,9 +164,10 @@ def test_acceptance_full_size(tmp_path):
         best[name] = cal.best_global(Table.read(tmp_path / name / "peaks.ecsv"))
         thr = Table.read(tmp_path / name / "thresholds.ecsv")
         for flip in (False, True):
-            t = thr[(thr["flip"] == flip) & (thr["false_alarm"] == 0.01)]
+            t = thr[(thr["flip"] == flip) & (thr["false_alarm"] == 0.05)]
+            assert np.all(t["usable"])
             assert t["s_threshold"][t["radius_deg"] < 40].min() > t["s_threshold"][t["radius_deg"] > 60].max()
         for f in ("fig_peaks.png", "fig_map.png", "fig_null.png"):
             assert (tmp_path / name / f).exists()
-    assert best["torus"]["p_global"] < 0.05 and abs(best["torus"]["radius_deg"] - 40.0) <= 1.0
-    assert best["iso"]["p_global"] > 0.01
+    assert best["torus"]["p_global"] == pytest.approx(1 / 41) and abs(best["torus"]["radius_deg"] - 40.0) <= 1.0
+    assert best["iso"]["p_global"] > 0.05
