@@ -33,11 +33,12 @@ For radius r and sense f (a *cell*) let M_rf be the simulations' peak S
 
 Spectra (``calibrate.spectrum``)
 --------------------------------
-* ``data``: pseudo-C_l of the prepared data map (masked, ``healpy.anafast``)
-  divided by f_sky and by the beam and high-pass window of ``prepare``, so that
-  the prepare step puts them back.  The data's noise is part of this spectrum:
-  leave ``calibrate.noise_uk_arcmin`` at 0 unless the noise must be added on
-  top.  The f_sky correction ignores mode coupling by the mask.
+* ``data``: pseudo-C_l of the masked data map corrected for the mask's mode
+  coupling (``calibrate.coupling: master``, :func:`data_spectrum`; ``fsky``
+  divides by f_sky instead) and divided by the beam and high-pass window of
+  ``prepare``, so that the prepare step puts them back.  The data's noise is
+  part of this spectrum: leave ``calibrate.noise_uk_arcmin`` at 0 unless the
+  noise must be added on top.
 * ``theory``: CAMB's TT spectrum of the ``cosmology`` section (twinring.cosmology).
 * ``file``: a table with columns l and C_l in uK^2 (ECSV/FITS with columns
   named ``l``/``ell`` and ``cl``/``c_l``/``C_l``/``tt``, or two plain-text columns).
@@ -159,6 +160,15 @@ def _hi_nside(nside, lmax):
     return n
 
 
+def fine_mask(mask, lmax):
+    """The 0/1 mask repeated onto :func:`_hi_nside` (its geometry unchanged), fine enough for W_l to 2 lmax."""
+    mask = (np.asarray(mask, float) > 0.5).astype(float)
+    nside = hp.npix2nside(mask.size)
+    nhi = _hi_nside(nside, lmax)
+    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
+    return (mhi > 0.5).astype(float)
+
+
 def pseudo_spectra(prepared):
     """(pseudo-C_l of the masked prepared map, mask pseudo-spectrum W_l to 2 lmax, f_sky).
 
@@ -167,14 +177,9 @@ def pseudo_spectra(prepared):
     unchanged), the map from the prepared a_lm without pixel window.
     """
     lmax = int(prepared.lmax)
-    mask = np.asarray(prepared.mask if prepared.mask is not None else np.ones_like(prepared.map), float)
-    mask = (mask > 0.5).astype(float)
-    nside = hp.npix2nside(mask.size)
-    nhi = _hi_nside(nside, lmax)
-    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
-    mhi = (mhi > 0.5).astype(float)
+    mhi = fine_mask(prepared.mask if prepared.mask is not None else np.ones_like(prepared.map), lmax)
     fsky = float(mhi.mean())
-    mp = hp.alm2map(prepared.alm, nhi, lmax=lmax, mmax=lmax, pixwin=False) * mhi
+    mp = hp.alm2map(prepared.alm, hp.npix2nside(mhi.size), lmax=lmax, mmax=lmax, pixwin=False) * mhi
     pseudo = hp.anafast(mp, lmax=lmax, pol=False, iter=3)
     wl = hp.anafast(mhi, lmax=2 * lmax, pol=False, iter=3)
     return pseudo, wl, fsky
@@ -212,9 +217,7 @@ def input_spectrum_master(sky: SkyMap, prep, lmax):
     else:
         values = np.asarray(sky.values, float) * mask
     pseudo = hp.anafast(values, lmax=lmax_s, pol=False, iter=3)
-    nhi = _hi_nside(nside, lmax_s)
-    mhi = hp.ud_grade(mask, nhi, order_in="RING", order_out="RING") if nhi != nside else mask
-    wl = hp.anafast((mhi > 0.5).astype(float), lmax=2 * lmax_s, pol=False, iter=3)
+    wl = hp.anafast(fine_mask(mask, lmax_s), lmax=2 * lmax_s, pol=False, iter=3)
     M = coupling_matrix(wl, lmax_s)
     cl = np.linalg.solve(M, pseudo)
     return cl[: lmax + 1], float(mask.mean())
@@ -353,6 +356,8 @@ class SimContext:
     noise_text: str = ""           # what noise the simulations get (log, summary, provenance)
     variance_checksum: str | None = None   # sha256 of calibrate.noise_variance_map
     compute: object = None         # ComputeSection (threads per simulation); not part of ``key``
+    maps_digest: tuple = ()        # files_digest of ``maps`` (checksums, combined), hashed once
+    noise_maps_digest: tuple = ()  # files_digest of ``noise_maps``
 
 
 def sim_rng(seed, index) -> np.random.Generator:
@@ -826,8 +831,10 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
     if c.spectrum == "data" and c.coupling != "master":
         h.update(repr(c.coupling).encode())
     h.update(np.ascontiguousarray(cl).tobytes())
+    maps_digest = files_digest(maps) if maps else ()
+    noise_digest = files_digest(noise_maps) if noise_maps else ()
     if maps or noise_maps:
-        h.update(repr((files_digest(maps)[1] if maps else "", files_digest(noise_maps)[1] if noise_maps else "",
+        h.update(repr((maps_digest[1] if maps else "", noise_digest[1] if noise_maps else "",
                        cfg.map.field, cfg.map.mask_field, cfg.map.mask_threshold)).encode())
     if input_bl is not None:
         h.update(np.ascontiguousarray(input_bl).tobytes())
@@ -839,7 +846,8 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
     ctx = SimContext(cl=cl, nside=nside, mask=mask, noise_sigma=sigma, prep=cfg.prepare, search=cfg.search,
                      listed=listed, seed=int(c.seed), frame=sky.frame, key=h.hexdigest()[:16], maps=tuple(maps),
                      noise_maps=tuple(noise_maps), map_section=cfg.map, input_bl=input_bl, n_sims=n_sims,
-                     noise_text=noise_text, variance_checksum=var_sum, compute=cfg.compute)
+                     noise_text=noise_text, variance_checksum=var_sum, compute=cfg.compute,
+                     maps_digest=maps_digest, noise_maps_digest=noise_digest)
     return ctx
 
 
@@ -861,11 +869,11 @@ def sims_provenance(ctx: SimContext) -> dict:
     """Provenance of supplied simulation and noise maps (count, checksums) and of a noise variance map."""
     out = {}
     if ctx.maps:
-        sums, allsum = files_digest(ctx.maps)
+        sums, allsum = ctx.maps_digest
         out.update(sim_maps_count=len(ctx.maps), sim_maps_sha256=allsum, sim_maps_checksums=sums,
                    sim_maps_first=str(ctx.maps[0]))
     if ctx.noise_maps:
-        sums, allsum = files_digest(ctx.noise_maps)
+        sums, allsum = ctx.noise_maps_digest
         out.update(noise_maps_count=len(ctx.noise_maps), noise_maps_sha256=allsum, noise_maps_checksums=sums,
                    noise_maps_first=str(ctx.noise_maps[0]))
     if ctx.variance_checksum:
