@@ -307,32 +307,24 @@ def test_planted_payload_in_calibration_store_runs_nothing(cal, tmp_path, capsys
 
 
 # --------------------------------------------------------------------------- 4. SIGTERM
-def _children(pid):
-    """Pids of the direct children of ``pid`` (from /proc)."""
-    kids = []
+def _proc_stats():
+    """(pid, fields of /proc/<pid>/stat after the command name) of every live process."""
     for p in Path("/proc").iterdir():
         if p.name.isdigit():
             try:
-                fields = (p / "stat").read_text().rsplit(")", 1)[1].split()
+                yield int(p.name), (p / "stat").read_text().rsplit(")", 1)[1].split()
             except OSError:
                 continue
-            if int(fields[1]) == pid:
-                kids.append(int(p.name))
-    return kids
+
+
+def _children(pid):
+    """Pids of the direct children of ``pid`` (from /proc)."""
+    return [q for q, fields in _proc_stats() if int(fields[1]) == pid]
 
 
 def _group(pgid):
     """Live pids of process group ``pgid`` (from /proc)."""
-    out = []
-    for p in Path("/proc").iterdir():
-        if p.name.isdigit():
-            try:
-                fields = (p / "stat").read_text().rsplit(")", 1)[1].split()
-            except OSError:
-                continue
-            if int(fields[2]) == pgid and fields[0] != "Z":
-                out.append(int(p.name))
-    return out
+    return [q for q, fields in _proc_stats() if int(fields[2]) == pgid and fields[0] != "Z"]
 
 
 def _alive(pid):

@@ -57,6 +57,15 @@ def twist_and_flip(g, x0, c1, c2, alpha, nfit=N_FIT):
     return phase_map_fit(phi, psi)
 
 
+def pair_row(c1, c2, alpha, twist, flip, **extra) -> dict:
+    """One predicted pair as a row: centres as lon/lat, radius ``alpha`` (rad) in degrees, plus ``extra``."""
+    lon1, lat1 = rings.vec_to_lonlat(c1)
+    lon2, lat2 = rings.vec_to_lonlat(c2)
+    return dict(radius_deg=float(np.degrees(alpha)), lon1_deg=float(lon1), lat1_deg=float(lat1),
+                lon2_deg=float(lon2), lat2_deg=float(lat2), separation_deg=float(rings.separation_deg(c1, c2)),
+                twist_deg=twist, flip=bool(flip), **extra)
+
+
 def predict_pairs(space: Space, max_distance=2.0):
     """List of dicts, one per physical circle pair, largest radius first."""
     x0 = space.observer
@@ -71,14 +80,8 @@ def predict_pairs(space: Space, max_distance=2.0):
             continue          # the inverse element lists this pair
         alpha = float(np.arccos(np.clip(d / 2.0, -1.0, 1.0)))
         twist, flip = twist_and_flip(g, x0, c1, c2, alpha)
-        lon1, lat1 = rings.vec_to_lonlat(c1)
-        lon2, lat2 = rings.vec_to_lonlat(c2)
-        rows.append(dict(
-            radius_deg=float(np.degrees(alpha)), lon1_deg=float(lon1), lat1_deg=float(lat1),
-            lon2_deg=float(lon2), lat2_deg=float(lat2), separation_deg=float(rings.separation_deg(c1, c2)),
-            twist_deg=twist, flip=bool(flip), element=label, distance=float(d),
-            orientation_reversing=bool(np.linalg.det(g.R) < 0),
-        ))
+        rows.append(pair_row(c1, c2, alpha, twist, flip, element=label, distance=float(d),
+                             orientation_reversing=bool(np.linalg.det(g.R) < 0)))
     rows.sort(key=lambda r: (-r["radius_deg"], r["lat1_deg"], r["lon1_deg"]))
     return rows
 

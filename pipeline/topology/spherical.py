@@ -432,7 +432,7 @@ def predict_pairs(space: SphericalSpace):
 
     ``distance`` is the image distance in units of chi (as for flat spaces); ``distance_r`` in R.
     """
-    from .circles import _order_key
+    from .circles import _order_key, pair_row
 
     chi = space.chi_over_r
     x0 = space.observer
@@ -446,14 +446,8 @@ def predict_pairs(space: SphericalSpace):
             continue
         alpha = float(circle_radius(d, chi))
         twist, flip = twist_and_flip(space, g, c1, c2, alpha)
-        lon1, lat1 = rings.vec_to_lonlat(c1)
-        lon2, lat2 = rings.vec_to_lonlat(c2)
-        rows.append(dict(
-            radius_deg=float(np.degrees(alpha)), lon1_deg=float(lon1), lat1_deg=float(lat1),
-            lon2_deg=float(lon2), lat2_deg=float(lat2), separation_deg=float(rings.separation_deg(c1, c2)),
-            twist_deg=twist, flip=bool(flip), element=g.label, distance=d / chi, distance_r=d,
-            orientation_reversing=False,
-        ))
+        rows.append(pair_row(c1, c2, alpha, twist, flip, element=g.label, distance=d / chi, distance_r=d,
+                             orientation_reversing=False))
     rows.sort(key=lambda r: (-r["radius_deg"], r["lat1_deg"], r["lon1_deg"]))
     return rows
 
