@@ -54,13 +54,16 @@ class Run:
         _PENDING[:] = [r for r in _PENDING if r is not self]
 
     def log(self, msg, *args):
-        """Log a line once: a stage's closing lines often repeat what its work already logged
-        (unit statistics, figure names), and each line belongs in the log only once."""
+        """Log a line (every call; the text is remembered for :meth:`log_summary`)."""
         text = (msg % args) if args else str(msg)
-        if text in self._logged:
-            return
         self._logged.add(text)
         self.logger.info("%s", text)
+
+    def log_summary(self, lines):
+        """Log a stage's closing lines, leaving out those its work already logged (unit statistics)."""
+        for line in lines:
+            if str(line) not in self._logged:
+                self.log(line)
 
     def progress(self, iterable, desc="", unit="it", total=None):
         """A progress bar with ETA on stderr (hidden when stderr is not a terminal or progress is off)."""
@@ -80,8 +83,8 @@ class Run:
         self.commit()
         lines = list(lines) + [f"wall time {self.elapsed():.1f} s, peak memory {peak_memory_mb():.0f} MB",
                                f"results in {self.dir}"]
+        self.log_summary(lines)
         for line in lines:
-            self.log(line)
             print(line)
 
 

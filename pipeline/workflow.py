@@ -309,9 +309,9 @@ def _per_map(name):
             mrun = open_run(mcfg, map_dir(run.dir, mname), True, name)
             mstate = state.maps.setdefault(mname, _State())
             run.log(f"map {mname}: {path}")
-            for line in body(mcfg, mrun, mstate):
-                mrun.log(line)
-                lines.append(f"[{mname}] {line}")
+            out = body(mcfg, mrun, mstate)
+            mrun.log_summary(out)
+            lines += [f"[{mname}] {line}" for line in out]
         return lines
     return each
 
@@ -367,8 +367,8 @@ def run_workflow(cfg, out=None, force=False, echo=print) -> dict:
         srun = open_run(ecfg, run_dir, True, name)
         lines = _body(name, ecfg)(ecfg, srun, state)
         dt = time.time() - t0
+        srun.log_summary(lines)
         for line in lines:
-            srun.log(line)
             echo(f"  {line}")
         echo(f"  ({dt:.1f} s)")
         manifest[name] = {"key": key, "seconds": round(dt, 2),
