@@ -271,14 +271,8 @@ def _read_column(path, what, field_index):
 
         cols = table.columns
         names = [c.name for c in cols]
-        explicit = indxschm == "EXPLICIT" or (obj == "PARTIAL" and names and names[0].upper() == "PIXEL")
-        pix_col = None
-        if explicit:
-            upper = [n.upper() for n in names]
-            pix_col = upper.index("PIXEL") if "PIXEL" in upper else 0
-            data_cols = [i for i in range(len(names)) if i != pix_col]
-        else:
-            data_cols = list(range(len(names)))
+        data_cols, pix_col = _data_columns(names, indxschm, obj)
+        explicit = pix_col is not None
         if not data_cols:
             raise _bad(p, f"{what} table has no data column", "a HEALPix binary table with at least one map column")
         field_index = resolve_field(p, [names[c] for c in data_cols], field_index)
@@ -483,6 +477,20 @@ def load_config_map(m, path=None) -> SkyMap:
                     mask_threshold=m.mask_threshold, allow_polarisation=m.allow_polarisation)
 
 
+def _data_columns(names, indxschm, obj):
+    """(indices of the map columns, index of the pixel-index column or None) of a HEALPix table.
+
+    Cut-sky files (``INDXSCHM = 'EXPLICIT'``, or ``OBJECT = 'PARTIAL'`` with PIXEL first) carry a
+    pixel-index column that is not a map.
+    """
+    explicit = indxschm == "EXPLICIT" or (obj == "PARTIAL" and names and names[0].upper() == "PIXEL")
+    if not explicit:
+        return list(range(len(names))), None
+    upper = [n.upper() for n in names]
+    pix_col = upper.index("PIXEL") if "PIXEL" in upper else 0
+    return [i for i in range(len(names)) if i != pix_col], pix_col
+
+
 # --------------------------------------------------------------------------- public: what the input is
 def header_info(path, field=0) -> dict:
     """Unit, ordering, frame and column of a map file from its header alone (no pixel is read)."""
@@ -495,8 +503,9 @@ def header_info(path, field=0) -> dict:
             return hdr[name] if name in hdr else prim.get(name)
 
         names = list(table.columns.names)
-        explicit = str(key("INDXSCHM") or "").strip().upper() == "EXPLICIT"
-        data = [n for n in names if not (explicit and n.upper() == "PIXEL")]
+        idx, _ = _data_columns(names, str(key("INDXSCHM") or "").strip().upper(),
+                               str(key("OBJECT") or "").strip().upper())
+        data = [names[c] for c in idx]
         if not data:
             raise _bad(p, "map table has no data column", "a HEALPix binary table with at least one map column")
         i = resolve_field(p, data, field)

@@ -343,3 +343,21 @@ def test_supplied_torus_sims_make_a_torus_unremarkable(tmp_path):
         res[name] = model.p_global(ir, f, peaks[ir, f])
     assert res["gauss"] == pytest.approx(1 / 8)            # beyond every isotropic sky: the floor 1/(N + 1)
     assert res["torus"] > 0.25                              # among the torus skies: unremarkable
+
+
+def test_cut_sky_partial_file_counts_fields_after_its_pixel_column(tmp_path):
+    # HEALPix cut-sky convention (common practice, no source): OBJECT = 'PARTIAL' with a PIXEL column first;
+    # field 1 is then the second map column (Q_STOKES), both for the header description and for the pixels,
+    # so it is refused as temperature
+    from twinring.skymap import header_info
+
+    cols = [fits.Column("PIXEL", "J", array=np.arange(10)),
+            fits.Column("I_STOKES", "E", array=np.ones(10), unit="uK"),
+            fits.Column("Q_STOKES", "E", array=np.ones(10), unit="uK")]
+    h = fits.BinTableHDU.from_columns(cols)
+    h.header.update(PIXTYPE="HEALPIX", NSIDE=4, ORDERING="RING", OBJECT="PARTIAL", INDXSCHM="IMPLICIT")
+    h.writeto(tmp_path / "cut.fits")
+    assert header_info(tmp_path / "cut.fits", 0)["column"] == "I_STOKES"
+    assert header_info(tmp_path / "cut.fits", 1)["column"] == "Q_STOKES"
+    with pytest.raises(InputError, match="Q_STOKES"):
+        load_map(tmp_path / "cut.fits", field=1)
