@@ -69,6 +69,7 @@ from astropy.table import Table
 
 from . import prepare as prep_mod
 from . import significance as sig
+from .filters import filter_window
 from . import search as search_mod
 from .config import InputError
 from .skymap import SkyMap
@@ -265,7 +266,7 @@ def data_spectrum(prepared, prep, coupling="master", input_bl=None, sky=None) ->
     # the window prepare applied (from the input map's beam to the target beam): dividing it out
     # gives the spectrum of the input map, instrument beam included, which prepare then re-applies
     win = prep_mod.beam_and_highpass(lmax, prepared.fwhm_deg, 0, input_bl=input_bl)
-    filt = prep_mod.filter_window(prep)      # prepare's multipole filter, re-applied to every simulation
+    filt = filter_window(prep)               # prepare's multipole filter, re-applied to every simulation
     if filt is not None:
         win = win * filt
     cl = np.zeros(lmax + 1)
@@ -356,6 +357,7 @@ class SimContext:
     noise_text: str = ""           # what noise the simulations get (log, summary, provenance)
     variance_checksum: str | None = None   # sha256 of calibrate.noise_variance_map
     compute: object = None         # ComputeSection (threads per simulation); not part of ``key``
+    filt: np.ndarray | None = None   # prepare's multipole filter, computed once (filters.filter_window)
     maps_digest: tuple = ()        # files_digest of ``maps`` (checksums, combined), hashed once
     noise_maps_digest: tuple = ()  # files_digest of ``noise_maps``
 
@@ -429,7 +431,7 @@ def null_peaks(ctx: SimContext, index) -> np.ndarray:
     """Work unit: grid peaks (n_radii, 2) of simulation ``index`` (``ctx.compute``: threads per unit)."""
     sky = simulate_sky(ctx, index)
     threads = max(1, int(getattr(ctx.compute, "threads", 0) or 1))
-    prepared = prep_mod.prepare_map(sky, ctx.prep, nthreads=threads, input_bl=ctx.input_bl)
+    prepared = prep_mod.prepare_map(sky, ctx.prep, nthreads=threads, input_bl=ctx.input_bl, filt=ctx.filt)
     _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}", compute=ctx.compute)
     return np.asarray(pool.peak_s, float)
 
@@ -847,7 +849,7 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
                      listed=listed, seed=int(c.seed), frame=sky.frame, key=h.hexdigest()[:16], maps=tuple(maps),
                      noise_maps=tuple(noise_maps), map_section=cfg.map, input_bl=input_bl, n_sims=n_sims,
                      noise_text=noise_text, variance_checksum=var_sum, compute=cfg.compute,
-                     maps_digest=maps_digest, noise_maps_digest=noise_digest)
+                     maps_digest=maps_digest, noise_maps_digest=noise_digest, filt=filter_window(cfg.prepare))
     return ctx
 
 

@@ -62,7 +62,6 @@ from pathlib import Path
 from . import store as _store
 from .errors import InputError
 
-STORE_FORMAT = _store.VERSION
 _log = logging.getLogger("twinring.execute")
 
 _IN_WORKER = False          # set in worker processes by _task
@@ -169,7 +168,7 @@ def load_unit(store_dir, tag, u, key=None, default=_MISSING, strict=False, say=N
         except _store.StoreError as exc:
             if strict:
                 raise
-            why = str(exc).split("; allowed:")[0]
+            why = exc.reason
             if say is not None:
                 say(f"{tag}: {why}; recomputing it")
     if default is _MISSING:

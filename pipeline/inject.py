@@ -93,6 +93,7 @@ from . import prepare as prep_mod
 from . import rings
 from .calibrate import grid_peaks, noise_sigma_pixel
 from .config import InputError
+from .filters import filter_window
 from .significance import lower_limit
 from .skymap import SkyMap
 
@@ -265,6 +266,7 @@ class InjectContext:
     thresholds: np.ndarray         # (R, 2) S thresholds
     seed: int
     key: str = ""
+    filt: np.ndarray | None = None  # prepare's multipole filter, computed once (filters.filter_window)
 
 
 def unit_rngs(seed, isize, irep):
@@ -407,7 +409,7 @@ def inject_unit(ctx: InjectContext, unit):
                detected=False)
     if not pairs:
         return out
-    prepared = prep_mod.prepare_map(sky, ctx.prep)
+    prepared = prep_mod.prepare_map(sky, ctx.prep, filt=ctx.filt)
     judge = judge_targeted if ctx.mode == "targeted" else judge_full
     best = judge(ctx, prepared, pairs, radius, key=f"{ctx.key}-inj{isize}-{irep}")
     if best is None:
@@ -520,7 +522,7 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
                          recipe=recipe, beam_fwhm_deg=beam, cosmo=cfg.cosmology, nside=nside, mask=mask, noise_sigma=sigma,
                          prep=cfg.prepare, search=cfg.search, mode=inj.mode, radius_tol_deg=inj.radius_tol_deg,
                          centre_tol_deg=inj.centre_tol_deg, radii=radii, thresholds=thr, seed=int(inj.seed),
-                         key=h.hexdigest()[:16])
+                         key=h.hexdigest()[:16], filt=filter_window(cfg.prepare))
 
 
 def injection_rate(cfg, model):

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from . import execute
-from .store import read_shard_json, refuse_out_among_inputs  # noqa: F401
+from .store import read_shard_json
 from .config import InputError
 
 MANIFEST = "shard.json"
@@ -229,4 +229,3 @@ def load_prepared_for_merge(cfg, dirs):
     return prep_mod.load_and_prepare(cfg), None
 
 
-load_shard_units = execute.load_shard_units    # (one helper for both merges, in twinring.execute)

@@ -46,7 +46,6 @@ import healpy as hp
 
 from .config import InputError, PrepareSection
 from .skymap import SkyMap, load_map, write_map  # noqa: F401
-from .filters import filter_window  # noqa: F401  (calibrate divides it out of the data spectrum)
 
 log = logging.getLogger("twinring.prepare")
 
@@ -400,22 +399,27 @@ def check_variance(src, scale, out_map, mask_out, prep: PrepareSection):
                          f"prepare.lmin..lmax (prepared rms above {MIN_RELATIVE_RMS:g} of the input's)")
 
 
-def apply_filter(alm, prep: PrepareSection) -> list:
-    """Multiply ``alm`` in place by the multipole filter ``prep.filter`` (twinring.filters); its notes."""
+def apply_filter(alm, prep: PrepareSection, filt=None) -> list:
+    """Multiply ``alm`` in place by the multipole filter ``prep.filter`` (twinring.filters); its notes.
+
+    ``filt``: that filter already computed (simulations and injections ship it to their workers,
+    so CAMB's source split is not redone in every process); None: computed here.
+    """
     from .filters import filter_hash, filter_window
 
-    f = filter_window(prep)
+    f = filter_window(prep) if filt is None else filt
     if f is None:
         return []
     hp.almxfl(alm, f, inplace=True)
     return [f"multipole filter {prep.filter} applied (sha256 {filter_hash(f)})"]
 
 
-def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1, input_bl=None) -> Prepared:
+def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1, input_bl=None, filt=None) -> Prepared:
     """Monopole/dipole removal, band limit and beam, output at ``prep.nside`` (see module notes).
 
     ``input_bl``: the input beam B_l (l = 0..lmax) already read from ``prep.input_beam``
-    (read here when None and the key is set).
+    (read here when None and the key is set).  ``filt``: the multipole filter of ``prep.filter``
+    already computed (:func:`apply_filter`).
 
     ``nthreads`` is used for the pixel geometry (ducc0); healpy's transforms
     use OpenMP and follow ``OMP_NUM_THREADS``.
@@ -479,7 +483,7 @@ def prepare_map(sky: SkyMap, prep: PrepareSection, nthreads: int = 1, input_bl=N
     pix_in = (f", input pixel window of Nside {nside_in} divided out" if prep.input_pixwin
               else ", input pixel window not removed (prepare.input_pixwin false)")
     notes.append(f"Gaussian beam fwhm {prep.fwhm_deg} deg in total ({beam_in}{pix_in}); l < {prep.lmin} removed")
-    notes += apply_filter(alm, prep)
+    notes += apply_filter(alm, prep, filt)
 
     out_map = hp.alm2map(alm, prep.nside, lmax=lmax, mmax=lmax, pixwin=False)
     check_variance(src, scale, out_map, mask_out, prep)

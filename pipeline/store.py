@@ -53,9 +53,10 @@ DATACLASSES = {
 class StoreError(InputError):
     """A unit file that cannot be used.  ``stale`` is True when the file is sound but belongs to other work."""
 
-    def __init__(self, msg, stale=False):
+    def __init__(self, msg, stale=False, reason=None):
         super().__init__(msg)
         self.stale = stale
+        self.reason = reason or msg      # the message without what is allowed (for resume's log line)
 
 
 # --------------------------------------------------------------------------- encoding
@@ -224,7 +225,7 @@ def read_unit(path, unit=None, key=None):
     allowed = f"allowed: a {SUFFIX} unit file written by twinring (store version {VERSION}); rerun to remake it"
 
     def bad(what):
-        return StoreError(f"{path}: {what}; {allowed}")
+        return StoreError(f"{path}: {what}; {allowed}", reason=f"{path}: {what}")
 
     try:
         with open(path, "rb") as fh:
@@ -267,10 +268,10 @@ def read_unit(path, unit=None, key=None):
     except _Bad as exc:
         raise bad(f"foreign or tampered unit file ({exc})")
     if unit is not None and got_unit != unit:
-        raise StoreError(f"{path}: holds unit {got_unit!r}, expected {unit!r}; {allowed}")
+        raise bad(f"holds unit {got_unit!r}, expected {unit!r}")
     if key is not None and got_key != key:
-        raise StoreError(f"{path}: made by other work (key {got_key!r}, expected {key!r}); "
-                         "allowed: units of the same work (same config and inputs)", stale=True)
+        why = f"{path}: made by other work (key {got_key!r}, expected {key!r})"
+        raise StoreError(f"{why}; allowed: units of the same work (same config and inputs)", stale=True, reason=why)
     return got_unit, got_key, result
 
 
