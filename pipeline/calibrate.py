@@ -246,7 +246,7 @@ def data_spectrum(prepared, prep, coupling="master", input_bl=None, sky=None) ->
         raise InputError("prepared map: no valid pixel; allowed: a map with some valid pixels")
     lo = max(2, int(prep.lmin))
     if input_bl is None:
-        input_bl = input_beam_window(prep, lmax)
+        input_bl = prep_mod.input_beam_window(prep, lmax)
     if coupling == "master" and sky is not None:
         est, _ = input_spectrum_master(sky, prep, lmax)
         if prep.input_pixwin:
@@ -274,15 +274,6 @@ def data_spectrum(prepared, prep, coupling="master", input_bl=None, sky=None) ->
     cl[ok] = est[ok] / win[ok] ** 2
     cl[:lo] = 0.0
     return np.maximum(cl, 0.0)
-
-
-def input_beam_window(prep, lmax) -> np.ndarray:
-    """The input map's beam B_l (l = 0..lmax), without the pixel window: from ``input_beam`` or ``input_fwhm_deg``."""
-    if prep.input_beam:
-        return prep_mod.read_beam_cached(prep.input_beam, lmax)
-    if prep.input_fwhm_deg > 0:
-        return np.asarray(hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=lmax), float)
-    return np.ones(int(lmax) + 1)
 
 
 def theory_spectrum(lmax, cosmo=None) -> np.ndarray:
@@ -718,7 +709,7 @@ def sky_spectrum(cfg, prepared, sky=None) -> np.ndarray:
         cl = file_spectrum(c.spectrum_file, lmax)
     cl = np.asarray(cl, float)[: lmax + 1].copy()
     # sky spectra seen through the input map's own beam (its pixel window is added to each simulated map)
-    cl *= input_beam_window(cfg.prepare, lmax)[: cl.size] ** 2
+    cl *= prep_mod.input_beam_window(cfg.prepare, lmax)[: cl.size] ** 2
     return cl
 
 

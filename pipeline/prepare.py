@@ -135,18 +135,16 @@ def remove_monopole_dipole(values, mask, nest=False, nthreads=1):
     return cleaned, coeffs
 
 
-def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_fwhm_deg=0.0, input_bl=None):
+def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_bl=None):
     """Window ``b_l`` (l = 0..lmax): from the input's beam to a Gaussian of ``fwhm_deg``, times a cut below ``lmin``.
 
-    The input's beam is ``input_bl`` (B_l for l = 0..lmax, pixel window included
-    if wanted) when given, else a Gaussian of ``input_fwhm_deg`` (none when 0).
+    The input's window is ``input_bl`` (B_l for l = 0..lmax, pixel window included
+    if wanted; :func:`input_window`), none when None.
     """
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else np.ones(lmax + 1)
     bl = np.array(bl, dtype=np.float64)
     if input_bl is not None:
         bl /= np.asarray(input_bl, float)[: lmax + 1]
-    elif input_fwhm_deg > 0:
-        bl /= hp.gauss_beam(math.radians(input_fwhm_deg), lmax=lmax)
     bl[: max(0, min(lmin, lmax + 1))] = 0.0
     return bl
 
@@ -290,16 +288,21 @@ def pixel_window(nside, lmax, sub=8, n_pix=192) -> np.ndarray:
     return pw.copy()
 
 
-def input_window(prep: PrepareSection, lmax, nside_in, input_bl=None) -> np.ndarray:
-    """The window the input map already carries (l = 0..lmax): its beam times, if asked, its pixel window."""
+def input_beam_window(prep, lmax, input_bl=None) -> np.ndarray:
+    """The input map's beam B_l (l = 0..lmax), without the pixel window: ``input_bl`` when given,
+    else from ``prep.input_beam`` or ``prep.input_fwhm_deg``, else 1."""
     if input_bl is None and prep.input_beam:
         input_bl = read_beam_cached(prep.input_beam, lmax)
     if input_bl is not None:
-        w = np.array(input_bl, float)[: lmax + 1]
-    elif prep.input_fwhm_deg > 0:
-        w = np.array(hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=lmax), float)
-    else:
-        w = np.ones(lmax + 1)
+        return np.array(input_bl, float)[: lmax + 1]
+    if prep.input_fwhm_deg > 0:
+        return np.array(hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=lmax), float)
+    return np.ones(int(lmax) + 1)
+
+
+def input_window(prep: PrepareSection, lmax, nside_in, input_bl=None) -> np.ndarray:
+    """The window the input map already carries (l = 0..lmax): its beam times, if asked, its pixel window."""
+    w = input_beam_window(prep, lmax, input_bl)
     if prep.input_pixwin:
         w = w * pixel_window(int(nside_in), lmax)
     return w
