@@ -340,16 +340,4 @@ def candidate_profiles(prepared, row, weighting="m", oversample=8):
     """
     from . import report
 
-    return report.candidate_profiles(prepared.alm, prepared.lmax, prepared.mask, _Row(row), weighting, oversample)
-
-
-class _Row(dict):
-    """A mapping that also answers ``colnames`` like an astropy row."""
-
-    def __init__(self, row):
-        names = getattr(row, "colnames", None) or list(row.keys())
-        super().__init__({k: row[k] for k in names})
-
-    @property
-    def colnames(self):
-        return list(self.keys())
+    return report.candidate_profiles(prepared.alm, prepared.lmax, prepared.mask, row, weighting, oversample)

@@ -551,13 +551,10 @@ PEAK_COLS = ("radius_deg", "flip", "s", "z", "p_local", "p_global", "beyond_sims
 
 
 def _most_significant_index(table):
-    """Row with the smallest recorded p_global (ties: larger z, then larger s)."""
-    p = np.asarray(table["p_global"], float)
-    z = np.asarray(table["z"], float) if "z" in table.colnames else np.zeros(len(table))
-    s = np.asarray(table["s"], float)
-    order = np.lexsort((-np.nan_to_num(s, nan=-np.inf), -np.nan_to_num(z, nan=-np.inf),
-                        np.where(np.isfinite(p), p, np.inf)))
-    return int(order[0])
+    """Row that ranks first in the calibrated ranking (calibrate.rank_order: p_global, z, grid S)."""
+    from .calibrate import rank_order
+
+    return int(rank_order(table, "s_grid" if "s_grid" in table.colnames else "s")[0])
 
 
 def summarize(run_dir, cfg=None, figures=()):
