@@ -31,6 +31,7 @@ from pathlib import Path
 import numpy as np
 from astropy.table import Table
 
+from . import rings
 from .config import InputError
 
 CONSISTENCY = "consistency.ecsv"
@@ -78,11 +79,11 @@ def map_dir(run_dir, name) -> Path:
 
 def tolerances(cfg) -> tuple:
     """(top, centre_tol_deg, radius_tol_deg, how they were chosen) from ``consistency`` or the grid."""
-    import healpy as hp
+    from .search import centre_spacing_deg
 
     c = cfg.consistency
     top = c.top if c.top is not None else max(1, cfg.report.circles)
-    step = float(np.degrees(hp.nside2resol(cfg.search.nside_centers)))
+    step = float(centre_spacing_deg(cfg.search.nside_centers))
     ctol = c.centre_tol_deg if c.centre_tol_deg is not None else c.centre_steps * step
     rtol = c.radius_tol_deg if c.radius_tol_deg is not None else float(cfg.search.radius_deg[2])
     how = (("consistency.centre_tol_deg" if c.centre_tol_deg is not None else
@@ -93,13 +94,7 @@ def tolerances(cfg) -> tuple:
 
 # --------------------------------------------------------------------------- pure matching
 def _vec(lon_deg, lat_deg):
-    lon, lat = np.radians(np.asarray(lon_deg, float)), np.radians(np.asarray(lat_deg, float))
-    return np.stack([np.cos(lat) * np.cos(lon), np.cos(lat) * np.sin(lon), np.sin(lat)], -1)
-
-
-def _angle(a, b):
-    """Angle [deg] between unit vectors a (3,) and rows of b (n, 3)."""
-    return np.degrees(np.arccos(np.clip(b @ a, -1.0, 1.0)))
+    return rings.lonlat_to_vec(np.asarray(lon_deg, float), np.asarray(lat_deg, float))
 
 
 def _col(t, name, default=np.nan, dtype=float):
@@ -120,8 +115,8 @@ def matches(a, i, b, centre_tol_deg, radius_tol_deg) -> np.ndarray:
         return np.zeros(0, int)
     eps = 1e-9
     ok = (b["flip"] == a["flip"][i]) & (np.abs(b["r"] - a["r"][i]) <= radius_tol_deg + eps)
-    same = (_angle(a["c1"][i], b["c1"]) <= centre_tol_deg + eps) & (_angle(a["c2"][i], b["c2"]) <= centre_tol_deg + eps)
-    swap = (_angle(a["c1"][i], b["c2"]) <= centre_tol_deg + eps) & (_angle(a["c2"][i], b["c1"]) <= centre_tol_deg + eps)
+    same = (rings.separation_deg(a["c1"][i], b["c1"]) <= centre_tol_deg + eps) & (rings.separation_deg(a["c2"][i], b["c2"]) <= centre_tol_deg + eps)
+    swap = (rings.separation_deg(a["c1"][i], b["c2"]) <= centre_tol_deg + eps) & (rings.separation_deg(a["c2"][i], b["c1"]) <= centre_tol_deg + eps)
     return np.flatnonzero(ok & (same | swap))
 
 
