@@ -112,7 +112,7 @@ def nearest_image_distance(space) -> float:
 
         x0 = space.observer
         return min(float(s3_distance(x0, g(x0))) for g in space.elements[1:]) / space.chi_over_r
-    from ..exclude import clone_distance, group_arrays
+    from .loops import clone_distance, group_arrays
 
     return clone_distance(group_arrays(space), space.observer)
 
@@ -122,10 +122,10 @@ def shortest_loop(space) -> float:
 
     Spherical: for x -> a x conj(b) the least displacement of any point is |theta_a - theta_b|
     (cos theta = Re); flat: the translation part along each element's fixed space
-    (``twinring.exclude.loop_min``).
+    (``twinring.topology.loops.loop_min``).
     """
     if kind_of(space) == SPHERICAL:
         return min(g.displacement()[0] for g in space.elements[1:]) / space.chi_over_r
-    from ..exclude import group_arrays, loop_min
+    from .loops import group_arrays, loop_min
 
     return loop_min(group_arrays(space))
