@@ -56,7 +56,7 @@ def spherical_limits(alpha_min_deg, d1, cosmo=None):
     """
     from scipy.optimize import brentq
 
-    from .exclude_spherical import chi_over_r_at
+    from .cosmology import chi_over_r_at
 
     k = math.atan(math.tan(0.5 * float(d1)) / math.cos(math.radians(float(alpha_min_deg))))
     try:

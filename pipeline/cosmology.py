@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import functools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace as _replace
 
 import numpy as np
 
@@ -104,6 +104,20 @@ def chi_over_r(cosmo=None) -> float:
     """chi / R: the radius of the last-scattering sphere in curvature radii (0 when flat)."""
     r = curvature_radius_gpc(cosmo)
     return 0.0 if math.isinf(r) else chi_ls_gpc(cosmo) / r
+
+
+def chi_over_r_at(omega_k, cosmo=None) -> float:
+    """chi / R at curvature ``omega_k`` (< 0), the other parameters from ``cosmo`` (None: Planck 2018)."""
+    ok = float(omega_k)
+    if not ok < 0.0:
+        raise ValueError(f"omega_k must be negative for a spherical space: found {ok}")
+    base = cosmo if cosmo is not None else _Defaults()
+    return chi_over_r(_replace(base, omega_k=ok))
+
+
+def curvature_radius_gpc_at(omega_k, cosmo=None) -> float:
+    base = cosmo if cosmo is not None else _Defaults()
+    return curvature_radius_gpc(_replace(base, omega_k=float(omega_k)))
 
 
 def chi_ls_gly(cosmo=None) -> float:

@@ -51,13 +51,13 @@ Units: distances in curvature radii R (``*_r``) and Gpc (``*_gpc``), angles in d
 """
 from __future__ import annotations
 
-import dataclasses
 import functools
 import math
 
 import numpy as np
 
 from .config import InputError
+from .cosmology import chi_over_r_at, curvature_radius_gpc_at
 from .topology import geometry
 from .topology import spherical as S
 
@@ -70,24 +70,6 @@ _EPS = 1e-12
 
 
 # --------------------------------------------------------------------------- curvature
-def chi_over_r_at(omega_k, cosmo=None) -> float:
-    """chi / R at curvature ``omega_k`` (< 0), the other parameters from ``cosmo`` (None: Planck 2018)."""
-    from . import cosmology
-
-    ok = float(omega_k)
-    if not ok < 0.0:
-        raise ValueError(f"omega_k must be negative for a spherical space: found {ok}")
-    base = cosmo if cosmo is not None else cosmology._Defaults()
-    return cosmology.chi_over_r(dataclasses.replace(base, omega_k=ok))
-
-
-def curvature_radius_gpc_at(omega_k, cosmo=None) -> float:
-    from . import cosmology
-
-    base = cosmo if cosmo is not None else cosmology._Defaults()
-    return cosmology.curvature_radius_gpc(dataclasses.replace(base, omega_k=float(omega_k)))
-
-
 def critical_distance(alpha_min_deg, chi_over_r) -> float:
     """d_crit (R): every image nearer than this makes a circle of radius >= alpha_min."""
     return float(geometry.distance_for_radius(alpha_min_deg, chi_over_r)) * float(chi_over_r)

@@ -192,7 +192,7 @@ def campaign_sizes(cfg, shape, scfg):
         raise InputError(f"{cfg.source or '<config>'}: inject.omega_k: found {list(cfg.inject.omega_k)} for the flat "
                          f"space {shape.name}; allowed: [] (curvatures size only spherical spaces)")
     if cfg.inject.omega_k:
-        from .exclude_spherical import chi_over_r_at
+        from .cosmology import chi_over_r_at
 
         sizes = tuple(1.0 / chi_over_r_at(ok, cfg.cosmology) for ok in cfg.inject.omega_k)
     elif cfg.inject.sizes:
