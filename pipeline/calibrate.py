@@ -69,7 +69,7 @@ from astropy.table import Table
 
 from . import prepare as prep_mod
 from . import significance as sig
-from .filters import filter_window
+from .filters import filter_id, filter_window, run_filter
 from . import search as search_mod
 from .config import InputError
 from .skymap import SkyMap
@@ -349,6 +349,7 @@ class SimContext:
     variance_checksum: str | None = None   # sha256 of calibrate.noise_variance_map
     compute: object = None         # ComputeSection (threads per simulation); not part of ``key``
     filt: np.ndarray | None = None   # prepare's multipole filter, computed once (filters.filter_window)
+    ring_filter: np.ndarray | None = None   # the optimal filter's ring weights (filters.run_filter), computed once
     maps_digest: tuple = ()        # files_digest of ``maps`` (checksums, combined), hashed once
     noise_maps_digest: tuple = ()  # files_digest of ``noise_maps``
 
@@ -405,13 +406,14 @@ def simulate_sky(ctx: SimContext, index) -> SkyMap:
                   checksum="", notes=[], path=f"simulation {int(index)}")
 
 
-def grid_peaks(prepared, scfg, listed=None, key="", compute=None):
+def grid_peaks(prepared, scfg, listed=None, key="", compute=None, ring_filter=None):
     """Grid peaks of S (n_radii, 2) of a prepared map: the search's scan and combine, no refinement.
 
     ``compute``: the config's compute section; its ``threads`` (0 = 1) are used by the ring synthesis,
     the twist FFTs and the screen (the grid peaks do not depend on the number of threads).
+    ``ring_filter``: the optimal filter's weight table (twinring.filters.run_filter) or None.
     """
-    plan = search_mod.make_plan(prepared, scfg, compute, listed, key=key)
+    plan = search_mod.make_plan(prepared, scfg, compute, listed, key=key, ring_filter=ring_filter)
     results = [search_mod.scan_chunk(plan, c) for c in plan.chunk_ids()]
     pool = search_mod.combine(plan, results)
     search_mod._RING_CACHE.clear()
@@ -423,7 +425,8 @@ def null_peaks(ctx: SimContext, index) -> np.ndarray:
     sky = simulate_sky(ctx, index)
     threads = max(1, int(getattr(ctx.compute, "threads", 0) or 1))
     prepared = prep_mod.prepare_map(sky, ctx.prep, nthreads=threads, input_bl=ctx.input_bl, filt=ctx.filt)
-    _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}", compute=ctx.compute)
+    _, pool = grid_peaks(prepared, ctx.search, ctx.listed, key=f"{ctx.key}-sim{int(index)}", compute=ctx.compute,
+                         ring_filter=ctx.ring_filter)
     return np.asarray(pool.peak_s, float)
 
 
@@ -840,7 +843,8 @@ def make_context(cfg, sky: SkyMap, prepared, listed=None) -> SimContext:
                      listed=listed, seed=int(c.seed), frame=sky.frame, key=h.hexdigest()[:16], maps=tuple(maps),
                      noise_maps=tuple(noise_maps), map_section=cfg.map, input_bl=input_bl, n_sims=n_sims,
                      noise_text=noise_text, variance_checksum=var_sum, compute=cfg.compute,
-                     maps_digest=maps_digest, noise_maps_digest=noise_digest, filt=filter_window(cfg.prepare))
+                     maps_digest=maps_digest, noise_maps_digest=noise_digest, filt=filter_window(cfg.prepare),
+                     ring_filter=run_filter(cfg))
     return ctx
 
 
@@ -872,6 +876,7 @@ def sims_provenance(ctx: SimContext) -> dict:
     if ctx.variance_checksum:
         out["sha256_noise_variance_map"] = ctx.variance_checksum
     out["simulation_noise"] = ctx.noise_text
+    out["filter"] = filter_id(ctx.prep, ctx.ring_filter)
     out["null_kind"] = "supplied simulation maps" if ctx.maps else "isotropic Gaussian skies"
     return out
 

@@ -67,7 +67,7 @@ class PrepareSection:
     lmin: int = _f(2, "int", min=0)
     remove_dipole: bool = _f(True, "bool")
     iterations: int = _f(3, "int", min=0, max=10)
-    filter: str = _f("none", "str", choices=("none", "optimal"))
+    filter: str = _f("none", "str", choices=("none", "multipole", "optimal"))
     # the input map's beam as a B_l table (FITS or text; instead of input_fwhm_deg)
     input_beam: str | None = _f(None, "path?")
     # divide the input map's HEALPix pixel window (healpy.pixwin at its Nside) out of its a_lm

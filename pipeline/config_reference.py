@@ -37,8 +37,9 @@ HELP = {
         "input_beam": "the input map's beam as a B_l table (FITS or text), instead of input_fwhm_deg",
         "input_pixwin": "divide the input map's HEALPix pixel window out of its a_lm (true for survey maps)",
         "mask_widen_fwhm": "widen the mask by this many prepare.fwhm_deg before the search; 0 = not widened",
-        "filter": "multipole filter before rings are sampled: none or optimal (matched-power weighting; "
-                  "measured to lower S on full-physics skies, see README)",
+        "filter": "none; optimal (ring modes weighted per radius by the power both views share, from CAMB's "
+                  "source split, the beam and calibrate.noise_uk_arcmin; replaces search.weighting); or multipole "
+                  "(one per-l filter for all radii; measured not to help, README)",
         "nside": "HEALPix Nside of the prepared map",
         "fwhm_deg": "FWHM of the Gaussian beam of the prepared map [deg]",
         "input_fwhm_deg": "FWHM of the beam the input map already has [deg]; the prepared beam replaces it",

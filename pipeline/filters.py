@@ -67,7 +67,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-FILTERS = ("none", "optimal")
+FILTERS = ("none", "multipole", "optimal")
+RING_FLOOR = 1e-3    # ring-mode power floor for the optimal weights, relative to the strongest mode (mask leakage, aliasing)
+TABLE_STEP_DEG = 0.5  # radius step of the optimal filter's weight table (linear interpolation between)
 REF_RADII_DEG = (20.0, 30.0, 40.0, 50.0, 60.0, 70.0)
 ETA_CUT = 2.2       # conformal times after ETA_CUT x the visibility peak count as "late" (ISW, reionisation)
 X_FLOOR = 1e-6       # smallest squared filter weight relative to the largest
@@ -240,7 +242,13 @@ def _lambda_sq(lmax, alpha_deg):
 
 
 def ring_weights(lmax, weighting):
-    w = np.arange(lmax + 1, dtype=float) if weighting == "m" else np.ones(lmax + 1)
+    """Ring weights W_m, m = 0..lmax: ``'m'``, ``'flat'`` or an array (the optimal filter's)."""
+    if isinstance(weighting, np.ndarray):
+        w = np.zeros(lmax + 1)
+        k = min(w.size, weighting.size)
+        w[:k] = weighting[:k]
+    else:
+        w = np.arange(lmax + 1, dtype=float) if weighting == "m" else np.ones(lmax + 1)
     w[0] = 0.0
     return w
 
@@ -248,7 +256,8 @@ def ring_weights(lmax, weighting):
 def expected_s(split: SourceSplit, alpha_deg, filt=None, bl=None, nl=None, weighting="m"):
     """(expected S of a true pair, null spread sigma of S) at radius alpha for filter ``filt`` (per l).
 
-    ``bl``: beam window (default 1), ``nl``: noise spectrum (uK^2, default 0).
+    ``bl``: beam window (default 1), ``nl``: noise spectrum (uK^2, default 0); ``weighting``: ``'m'``,
+    ``'flat'`` or ring weights per mode (:func:`optimal_ring_weights`).
     """
     lmax = split.lmax
     f2 = np.ones(lmax + 1) if filt is None else np.asarray(filt, float)[: lmax + 1] ** 2
@@ -301,7 +310,7 @@ def optimal_filter(split: SourceSplit, bl=None, nl=None, lmin=2, radii=REF_RADII
 def _filter_for(name, lmax, lmin, fwhm_deg):
     import healpy as hp
 
-    if name == "none":
+    if name != "multipole":
         return None
     split = source_split(lmax)
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else None
@@ -311,7 +320,8 @@ def _filter_for(name, lmax, lmin, fwhm_deg):
 
 
 def filter_window(prep) -> np.ndarray | None:
-    """The per-l filter ``prepare.filter`` asks for (l = 0..prep.lmax), or None for ``none``.
+    """The per-l filter ``prepare.filter: multipole`` asks for (l = 0..prep.lmax); None for ``none``
+    and ``optimal`` (which weights ring modes in the search instead: :func:`ring_filter`).
 
     Computed for the prepared beam ``prep.fwhm_deg``, no noise, the default cosmology and the
     reference radii; cached, so every map of a run (data, simulations, injections) gets the same one.
@@ -328,3 +338,123 @@ def filter_hash(f) -> str:
     if f is None:
         return "none"
     return hashlib.sha256(np.round(np.asarray(f, float), 12).tobytes()).hexdigest()[:12]
+
+
+# --------------------------------------------------------------------------- the optimal filter: ring modes, per radius
+def ring_mode_spectra(split: SourceSplit, alpha_deg, bl=None, nl=None):
+    """(P^pair_m, P^tot_m), m = 0..lmax: power of ring mode m shared by the two views of a true pair
+    of radius alpha, and the total power of mode m on one ring (beam ``bl``, noise ``nl``)."""
+    lmax = split.lmax
+    b2 = np.ones(lmax + 1) if bl is None else np.asarray(bl, float)[: lmax + 1] ** 2
+    n = np.zeros(lmax + 1) if nl is None else np.asarray(nl, float)[: lmax + 1]
+    lam = _lambda_sq(lmax, float(alpha_deg))
+    return (b2 * pair_spectrum(split, alpha_deg)) @ lam, (b2 * split.total + n) @ lam
+
+
+def optimal_ring_weights(split: SourceSplit, alpha_deg, bl=None, nl=None, floor=None) -> np.ndarray:
+    """Ring-mode weights W_m (m = 0..lmax, max 1) of the optimal filter at radius alpha.
+
+    S sums products of ring modes m; for an isotropic sky the modes of one ring are independent,
+    so the null products have variance ~ (P^tot_m)^2 and a true pair's have mean P^pair_m.  The
+    weighted sum's mean over its null spread is largest for W_m = P^pair_m / (P^tot_m)^2 (the
+    matched filter over independent modes), each mode then counting by its correlation
+    rho_m = P^pair_m / P^tot_m.  Modes whose shared power is negative (the Doppler part seen head
+    on) get 0: S keeps one sign.  ``floor`` x the strongest mode's power is added to P^tot_m, so
+    modes the beam has emptied (whose ring content is rounding) get no weight.
+    """
+    pp, pt = ring_mode_spectra(split, alpha_deg, bl, nl)
+    pt = pt + (RING_FLOOR if floor is None else floor) * float(np.max(pt[1:]))
+    w = np.zeros_like(pp)
+    w[1:] = np.maximum(pp[1:], 0.0) / pt[1:] ** 2
+    if not w.max() > 0:
+        raise ValueError(f"no ring mode carries matched power at radius {alpha_deg} deg")
+    return w / w.max()
+
+
+def ring_weight_table(split: SourceSplit, bl=None, nl=None, step=TABLE_STEP_DEG) -> np.ndarray:
+    """:func:`optimal_ring_weights` at radii step, 2 step, ... 90 deg: array (n_radii, lmax + 1)."""
+    radii = np.arange(1, int(round(90.0 / step)) + 1) * step
+    return np.stack([optimal_ring_weights(split, r, bl, nl) for r in radii])
+
+
+def weights_at(table, radius_deg, nsamp, step=TABLE_STEP_DEG) -> np.ndarray:
+    """Ring weights for rings of ``nsamp`` samples at ``radius_deg`` (m = 0..nsamp // 2), linear in
+    radius between the table's rows; modes above the table's lmax get 0."""
+    table = np.asarray(table, float)
+    x = min(max(float(radius_deg) / step, 1.0), float(table.shape[0])) - 1.0
+    i0 = min(int(math.floor(x)), table.shape[0] - 1)
+    i1 = min(i0 + 1, table.shape[0] - 1)
+    t = x - i0
+    row = (1.0 - t) * table[i0] + t * table[i1]
+    out = np.zeros(nsamp // 2 + 1)
+    k = min(out.size, row.size)
+    out[:k] = row[:k]
+    return out
+
+
+def noise_spectrum(prep, noise_uk_arcmin) -> np.ndarray | None:
+    """White noise of ``noise_uk_arcmin`` on the input map, as prepare leaves it (re-beamed from the
+    input beam to ``prep.fwhm_deg``): N_l in uK^2 (l = 0..prep.lmax), or None for no noise."""
+    import healpy as hp
+
+    if not noise_uk_arcmin:
+        return None
+    n = (float(noise_uk_arcmin) * math.radians(1.0 / 60.0)) ** 2
+    b_out = hp.gauss_beam(math.radians(prep.fwhm_deg), lmax=prep.lmax)
+    b_in = hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=prep.lmax)
+    return n * (b_out / b_in) ** 2
+
+
+@functools.lru_cache(maxsize=8)
+def _ring_filter(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin, params):
+    import healpy as hp
+    from types import SimpleNamespace
+
+    from . import cosmology
+
+    split = source_split(lmax, cosmology._Defaults(*params))
+    bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else None
+    prep = SimpleNamespace(fwhm_deg=fwhm_deg, input_fwhm_deg=input_fwhm_deg, lmax=lmax)
+    table = ring_weight_table(split, bl, noise_spectrum(prep, noise_uk_arcmin))
+    table.setflags(write=False)
+    return table
+
+
+def ring_filter(prep, noise_uk_arcmin=0.0, cosmo=None) -> np.ndarray | None:
+    """The optimal filter's ring-weight table for ``prepare.filter: optimal`` (None otherwise).
+
+    Computed once per process for the prepared beam, the survey's white noise level and the
+    cosmology (CAMB's source split: about a minute at lmax 128), then shipped in the search plan to
+    every worker, so data, simulations and injections are weighted alike.
+    """
+    from . import cosmology
+
+    if getattr(prep, "filter", "none") != "optimal":
+        return None
+    return _ring_filter(int(prep.lmax), float(prep.fwhm_deg), float(prep.input_fwhm_deg),
+                        float(noise_uk_arcmin or 0.0), cosmology._params(cosmo))
+
+
+def filter_id(prep, table=None) -> str:
+    """``name:hash`` of the filter a run applies (``none``; ``multipole:<sha>``; ``optimal:<sha>``),
+    the same string in the provenance of data, simulation and injection tables."""
+    name = getattr(prep, "filter", "none")
+    if name == "none":
+        return "none"
+    if name == "multipole":
+        return f"multipole:{filter_hash(filter_window(prep))}"
+    if table is None:
+        raise ValueError("the optimal filter's weight table is needed for its id")
+    return f"optimal:{filter_hash(table)}"
+
+
+def run_filter(cfg) -> np.ndarray | None:
+    """:func:`ring_filter` for a run config: its prepare section, calibrate.noise_uk_arcmin (the
+    survey's white noise level as the simulations add it) and its cosmology.  Data, simulation and
+    injection searches all take the table from here."""
+    return ring_filter(cfg.prepare, cfg.calibrate.noise_uk_arcmin, getattr(cfg, "cosmology", None))
+
+
+def weighting_name(cfg) -> str:
+    """The ring weighting a run's search uses: ``optimal`` (the filter's, per radius) or search.weighting."""
+    return "optimal" if getattr(cfg.prepare, "filter", "none") == "optimal" else cfg.search.weighting

@@ -93,7 +93,7 @@ from . import prepare as prep_mod
 from . import rings
 from .calibrate import grid_peaks, noise_sigma_pixel
 from .config import InputError
-from .filters import filter_window
+from .filters import filter_id, filter_window, run_filter
 from .significance import lower_limit
 from .skymap import SkyMap
 
@@ -267,6 +267,7 @@ class InjectContext:
     seed: int
     key: str = ""
     filt: np.ndarray | None = None  # prepare's multipole filter, computed once (filters.filter_window)
+    ring_filter: np.ndarray | None = None  # the optimal filter's ring weights (filters.run_filter), computed once
 
 
 def unit_rngs(seed, isize, irep):
@@ -359,7 +360,7 @@ def judge_targeted(ctx, prepared, pairs, radius, key):
     step = float(np.median(np.diff(ctx.radii))) if ctx.radii.size > 1 else 1.0
     scfg = dataclasses.replace(ctx.search, family="listed", radius_deg=(float(ctx.radii[idx[0]]),
                                float(ctx.radii[idx[-1]]), step))
-    plan, pool = grid_peaks(prepared, scfg, grid_pairs(pairs, ctx.search), key=key)
+    plan, pool = grid_peaks(prepared, scfg, grid_pairs(pairs, ctx.search), key=key, ring_filter=ctx.ring_filter)
     best = None
     for f in sorted({int(p["flip"]) for p in pairs}):
         for q, ir in enumerate(idx):
@@ -373,7 +374,7 @@ def judge_targeted(ctx, prepared, pairs, radius, key):
 def judge_full(ctx, prepared, pairs, radius, key):
     if _window(ctx, radius).size == 0:
         return None
-    plan, pool = grid_peaks(prepared, ctx.search, None, key=key)
+    plan, pool = grid_peaks(prepared, ctx.search, None, key=key, ring_filter=ctx.ring_filter)
     tol = ctx.centre_tol_deg or 2.5 * plan.grid_deg
     cos_tol = math.cos(math.radians(tol))
     c1, c2 = plan.centres[pool.i], plan.centres[pool.j]
@@ -522,7 +523,8 @@ def make_context(cfg, sky, model, shape=None, sizes=None) -> InjectContext:
                          recipe=recipe, beam_fwhm_deg=beam, cosmo=cfg.cosmology, nside=nside, mask=mask, noise_sigma=sigma,
                          prep=cfg.prepare, search=cfg.search, mode=inj.mode, radius_tol_deg=inj.radius_tol_deg,
                          centre_tol_deg=inj.centre_tol_deg, radii=radii, thresholds=thr, seed=int(inj.seed),
-                         key=h.hexdigest()[:16], filt=filter_window(cfg.prepare))
+                         key=h.hexdigest()[:16], filt=filter_window(cfg.prepare),
+                         ring_filter=run_filter(cfg))
 
 
 def injection_rate(cfg, model):
@@ -606,6 +608,7 @@ def inject_run(cfg, run, sky=None):
                 realizations=cfg.inject.realizations, seed=cfg.inject.seed, noise_uk_arcmin=instrument(cfg)[0],
                 beam_fwhm_deg=instrument(cfg)[1],
                 physics=ctx.recipe.physics, confidence=CONFIDENCE, search_family=cfg.search.family,
+                filter=filter_id(cfg.prepare, ctx.ring_filter),
                 size_definition=getattr(shape, "size_definition",
                                         "length of the first generator in units of chi (cubic torus: side L)"),
                 geometry=getattr(shape, "geometry", "flat"))

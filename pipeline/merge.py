@@ -34,6 +34,7 @@ import numpy as np
 from . import execute
 from .store import read_shard_json
 from .config import InputError
+from .filters import run_filter
 
 MANIFEST = "shard.json"
 CHUNK_TAG = "chunks"
@@ -175,7 +176,7 @@ def search_shard(cfg, run, prepared, shard, table=None):
     """Scan only the chunks of ``shard`` (no combine, no finalize); return (plan, results)."""
     from . import search as search_mod
 
-    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash())
+    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash(), ring_filter=run_filter(cfg))
     res = run_chunks(plan, cfg, run, shard)
     return plan, res
 

@@ -492,7 +492,10 @@ def fig_candidate(prepared, row, path, weighting="m", dpi=110, status="", p_labe
     d = candidate_profiles(prepared.alm, prepared.lmax, prepared.mask, row, weighting)
     flip = bool(row["flip"])
     fig, (a1, a2) = plt.subplots(2, 1, figsize=(8.5, 7.2), constrained_layout=True)
-    wtxt = "less its mean, filtered by √|m|" if weighting == "m" else "less its mean"
+    if isinstance(weighting, np.ndarray):
+        wtxt = "less its mean, filtered by the optimal ring weights"
+    else:
+        wtxt = "less its mean, filtered by √|m|" if weighting == "m" else "less its mean"
     a1.plot(d["phi_deg"], d["t1"], color="C0", lw=1.3, label="circle 1 at φ")
     a1.plot(d["phi_deg"], d["t2"], color="C3", lw=1.1, ls="--",
             label=f"circle 2 at {'twist − φ' if flip else 'φ + twist'}")
@@ -781,12 +784,24 @@ def make_report(run_dir, cfg=None, log=None):
         old.unlink()
     if prepared is not None and cand is not None and len(cand):
         weighting = cfg.search.weighting if cfg is not None else str(cand.meta.get("weighting", "m"))
+        table = None
+        if cfg is not None and cfg.prepare.filter == "optimal":
+            from .filters import run_filter
+
+            table = run_filter(cfg)
         rows, status = shown_candidates(cand, n_circles)
         n, floor = calibration_n(cand, thr), p_floor(cand, thr)
         for i in rows:
             row = cand[i]
             rank = int(row["rank"]) if "rank" in row.colnames else i + 1
-            path, _ = fig_candidate(prepared, row, d / CANDIDATE_FIGURE.format(rank), weighting, dpi, status,
+            w = weighting
+            if table is not None:       # the optimal filter's weights at this candidate's radius
+                from . import rings
+                from .filters import weights_at
+
+                w = weights_at(table, float(row["radius_deg"]),
+                               rings.samples_for(math.radians(float(row["radius_deg"])), prepared.lmax))
+            path, _ = fig_candidate(prepared, row, d / CANDIDATE_FIGURE.format(rank), w, dpi, status,
                                     p_text(row, "p_global", floor, n))
             figures.append(path)
     figures += exclusion_figures(d, dpi)

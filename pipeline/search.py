@@ -24,7 +24,7 @@ import scipy.fft
 from scipy.optimize import minimize
 
 from . import rings
-from .statistic import ring_spectra, scan_pairs, s_curve
+from .statistic import m_weights, ring_spectra, scan_pairs, s_curve
 from .config import InputError
 
 TARGET_PAIRS_PER_CHUNK = 2_000_000
@@ -54,6 +54,15 @@ class SearchPlan:
     screen_mmax: int = 0             # fast: highest m of the screen (0 = from the ring power)
     memory_gb: float = 4.0           # fast: memory for the screen's blocked products
     screen: dict = field(default_factory=dict)   # fast: what the screen is and its reference survival
+    ring_filter: np.ndarray | None = None   # prepare.filter optimal: ring weights per radius (twinring.filters)
+
+    def weights(self, radius_deg, nsamp):
+        """The ring weighting at a radius: the optimal filter's weights there, else ``weighting``."""
+        if self.ring_filter is None:
+            return self.weighting
+        from .filters import weights_at
+
+        return weights_at(self.ring_filter, radius_deg, nsamp)
 
     def chunk_ids(self):
         return [(ir, ib) for ir in range(len(self.radii_deg)) for ib in range(len(self.blocks))]
@@ -79,8 +88,11 @@ def centre_spacing_deg(nside):
     return math.degrees(hp.nside2resol(nside))
 
 
-def make_plan(prepared, scfg, compute=None, listed_table=None, key="") -> SearchPlan:
-    """Build the search plan from a prepared map and the config's search section."""
+def make_plan(prepared, scfg, compute=None, listed_table=None, key="", ring_filter=None) -> SearchPlan:
+    """Build the search plan from a prepared map and the config's search section.
+
+    ``ring_filter``: the optimal filter's weight table (twinring.filters.run_filter), which then
+    replaces ``scfg.weighting`` at every radius."""
     radii = tuple(scfg.radii_deg())
     nsamp = tuple(rings.samples_for(math.radians(r), prepared.lmax, scfg.sample_margin) for r in radii)
     mask = prepared.mask
@@ -119,7 +131,7 @@ def make_plan(prepared, scfg, compute=None, listed_table=None, key="") -> Search
         alm=np.asarray(prepared.alm), lmax=int(prepared.lmax), mask=mask, centres=centres, radii_deg=radii,
         nsamp=nsamp, family=scfg.family, blocks=blocks, partner=partner, sep_cos=sep_cos,
         weighting=scfg.weighting, min_valid_fraction=scfg.min_valid_fraction, keep=scfg.keep_per_radius,
-        threads=threads, grid_deg=(scfg.suppress_deg or grid), key=key,
+        threads=threads, grid_deg=(scfg.suppress_deg or grid), key=key, ring_filter=ring_filter,
         **_screen_fields(scfg, compute),
     )
 
@@ -181,7 +193,7 @@ def ring_set(plan: SearchPlan, ir):
     alpha = math.radians(plan.radii_deg[ir])
     vals, wts = rings.sample_rings(plan.alm, plan.lmax, plan.centres, alpha, plan.nsamp[ir], None, plan.mask,
                                    nthreads=plan.threads)
-    spec = ring_spectra(vals, wts, plan.weighting)
+    spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
     _RING_CACHE.clear()   # one radius at a time per process bounds memory
     _RING_CACHE[ir] = (plan, spec)
     return spec
@@ -335,13 +347,11 @@ def valid_fraction(plan: SearchPlan, c1, c2, radius_deg):
 REFINE_EPSILON = 1e-10   # ducc0 accuracy of the off-grid synthesis: batched and single calls agree to ~1e-11
 
 
-def _curves(t1, t2, flip, weighting, oversample):
+def _curves(t1, t2, flip, w, oversample):
     """S over ``N * oversample`` twists for rings (B, N) without masks (the Fourier form of
-    :func:`twinring.statistic.s_curve`, for a batch of pairs): (B, N * oversample)."""
-    from .statistic import m_weights
-
+    :func:`twinring.statistic.s_curve`, for a batch of pairs, ring weights ``w`` (B, N // 2 + 1)):
+    (B, N * oversample)."""
     nsamp = t1.shape[-1]
-    w = m_weights(nsamp, weighting)
     a1 = scipy.fft.rfft(t1, axis=-1)
     a2 = scipy.fft.rfft(t2, axis=-1)
     x = w * (a1 if flip else np.conj(a1)) * a2
@@ -396,7 +406,8 @@ def pair_statistics(plan: SearchPlan, items, oversample=8):
         k = len(qs)
         v = vals[off:off + 2 * k * n].reshape(2, k, n)
         if wts is None:
-            res = [_curves(v[0], v[1], flip, plan.weighting, oversample) for flip in (False, True)]
+            w = np.stack([m_weights(n, plan.weights(items[q][2], n)) for q in qs])
+            res = [_curves(v[0], v[1], flip, w, oversample) for flip in (False, True)]
             for row, q in enumerate(qs):
                 out[q] = [_best_twist(res[f][row]) for f in (0, 1)]
         else:
@@ -406,7 +417,8 @@ def pair_statistics(plan: SearchPlan, items, oversample=8):
                 if min(u[0, row].mean(), u[1, row].mean()) < min_valid:
                     out[q] = [(-np.inf, 0.0), (-np.inf, 0.0)]
                     continue
-                out[q] = [_best_twist(s_curve(v[0, row], v[1, row], flip, plan.weighting, u[0, row], u[1, row]))
+                wq = plan.weights(items[q][2], n)
+                out[q] = [_best_twist(s_curve(v[0, row], v[1, row], flip, wq, u[0, row], u[1, row]))
                           for flip in (False, True)]
         off += 2 * k * n
     return out
@@ -793,9 +805,10 @@ def peak_table(plan: SearchPlan, pool: Pool) -> Table:
     return t
 
 
-def run_search(prepared, scfg, compute=None, listed_table=None, runner=None, progress=None, key=""):
-    """The whole search on a prepared map: plan, scan every chunk, combine, finalize."""
-    plan = make_plan(prepared, scfg, compute, listed_table, key=key)
+def run_search(prepared, scfg, compute=None, listed_table=None, runner=None, progress=None, key="", ring_filter=None):
+    """The whole search on a prepared map: plan, scan every chunk, combine, finalize (``ring_filter``:
+    :func:`make_plan`)."""
+    plan = make_plan(prepared, scfg, compute, listed_table, key=key, ring_filter=ring_filter)
     chunks = plan.chunk_ids()
     if runner is None:
         from .execute import run_units

@@ -13,6 +13,7 @@ import numpy as np
 from . import prepare as prep_mod
 from . import search as search_mod
 from .config import InputError, load_config  # noqa: F401
+from .filters import filter_id, run_filter, weighting_name
 from .inputs import input_files, listed_pairs, load_run_config  # noqa: F401  (stage edges use them)
 from .results import provenance, write_table
 from .rundir import open_run
@@ -85,11 +86,14 @@ def search_prepared(cfg, run, prepared, runner=None):
     warn = search_mod.grid_warning(prepared, cfg.search)
     if warn:
         run.log(warn)
+    rfilt = run_filter(cfg)
     plan, pool, cand, peaks = search_mod.run_search(
-        prepared, cfg.search, cfg.compute, table, runner=runner, progress=run.progress, key=cfg.hash())
+        prepared, cfg.search, cfg.compute, table, runner=runner, progress=run.progress, key=cfg.hash(),
+        ring_filter=rfilt)
     cand.meta["grid_warning"] = warn or ""
     meta = provenance(cfg, input_files(cfg), "search")
-    meta.update(family=cfg.search.family, weighting=cfg.search.weighting, pairs_per_radius=int(pool.pairs_scanned // max(1, len(plan.radii_deg))),
+    meta.update(family=cfg.search.family, weighting=weighting_name(cfg), filter=filter_id(cfg.prepare, rfilt),
+                pairs_per_radius=int(pool.pairs_scanned // max(1, len(plan.radii_deg))),
                 twist_convention="circle 1 at phase phi matches circle 2 at phi + twist (flip false) or twist - phi (flip true)",
                 grid_warning=warn or "")
     meta.update({f"screen_{k}" if not k.startswith("screen") else k: v
@@ -184,7 +188,7 @@ def merge_shards(dirs, out, force=False, progress=True):
     n = mans[0][1]["shard"][1]
     prepared, _ = load_prepared_for_merge(cfg, [d for d, _ in mans])
     table = listed_pairs(cfg)
-    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash())
+    plan = search_mod.make_plan(prepared, cfg.search, cfg.compute, table, key=cfg.hash(), ring_filter=run_filter(cfg))
     if plan_key(plan) != key:
         raise InputError(f"{first}: the stored prepared map and config give work key {plan_key(plan)}, the shards "
                          f"were made with {key}; allowed: shard directories left as `twinring search` wrote them")

@@ -9,7 +9,8 @@ and Cornish, Spergel, Starkman & Komatsu (2004) weight the Fourier form by |m|:
 
     S(beta) = 2 Re sum_m w_m conj(a1_m) a2_m e^{i m beta} / sum_m w_m (|a1_m|^2 + |a2_m|^2),
 
-m >= 1, w_m = |m| (``weighting='m'``) or 1 (``'flat'``).  One inverse real FFT of
+m >= 1, w_m = |m| (``weighting='m'``), 1 (``'flat'``) or the optimal filter's weights per mode
+(an array; twinring.filters.optimal_ring_weights).  One inverse real FFT of
 w conj(a1) a2 gives all N twists.  The opposite sense (circle 2 traversed the
 other way, T1(phi) against T2(beta - phi)) uses w a1 a2 instead.  Twist index k
 means beta = 2 pi k / N.
@@ -32,8 +33,17 @@ SUB_BATCH = 1024   # pairs per FFT batch: fixed so results never depend on chunk
 
 
 def m_weights(nsamp, weighting):
+    """Weights w_m, m = 0..nsamp // 2: ``'m'`` (|m|), ``'flat'`` (1) or an array of weights per mode
+    (the optimal filter's, twinring.filters.weights_at; zero-padded or cut to length)."""
     m = np.arange(nsamp // 2 + 1, dtype=np.float64)
-    w = np.abs(m) if weighting == "m" else np.ones_like(m)
+    if isinstance(weighting, np.ndarray):
+        w = np.zeros_like(m)
+        k = min(w.size, weighting.size)
+        w[:k] = weighting[:k]
+        if np.any(w < 0):
+            raise ValueError("ring weights must be >= 0")
+    else:
+        w = np.abs(m) if weighting == "m" else np.ones_like(m)
     w[0] = 0.0
     if nsamp % 2 == 0:
         w[-1] = 0.0   # the Nyquist term of a band-limited ring carries nothing

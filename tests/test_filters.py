@@ -94,3 +94,143 @@ def test_prepare_section_takes_the_filter_key():
     with pytest.raises(InputError):
         config_from_dict({"prepare": {"filter": "wiener"}})
     assert config_from_dict({"prepare": {"filter": "optimal"}}).prepare.filter == "optimal"
+
+
+# --------------------------------------------------------------------------- the optimal filter (ring modes, per radius)
+def test_optimal_ring_weights_are_the_matched_weights(split):
+    # written independently: W_m proportional to max(P^pair_m, 0) / (P^tot_m + floor)^2 with
+    # P_m = sum_l C_l |Y_lm(alpha, 0)|^2 (scipy's sph_harm_y), zero at m = 0
+    from scipy.special import sph_harm_y
+    import healpy as hp
+
+    bl = hp.gauss_beam(math.radians(3.0), lmax=LMAX)
+    alpha = 62.0
+    lam = np.zeros((LMAX + 1, LMAX + 1))
+    for ell in range(LMAX + 1):
+        for m in range(ell + 1):
+            lam[ell, m] = abs(sph_harm_y(ell, m, math.radians(alpha), 0.0)) ** 2
+    pp = (bl ** 2 * F.pair_spectrum(split, alpha)) @ lam
+    pt = (bl ** 2 * split.total) @ lam
+    pt = pt + F.RING_FLOOR * pt[1:].max()
+    want = np.concatenate([[0.0], np.maximum(pp[1:], 0) / pt[1:] ** 2])
+    got = F.optimal_ring_weights(split, alpha, bl)
+    assert np.allclose(got, want / want.max(), rtol=1e-9, atol=1e-14)
+    assert got[0] == 0 and got.max() == pytest.approx(1.0)
+
+
+def test_optimal_ring_weights_maximise_the_model_margin(split):
+    # Cauchy-Schwarz: over independent ring modes, mean over null spread is largest for W_m proportional
+    # to P^pair_m / (P^tot_m)^2 (matched filter; common practice, no source).  Without the floor the
+    # optimal weights beat |m|, flat and random positive weightings at every radius.
+    rng = np.random.default_rng(3)
+    for alpha in (30.0, 45.0, 60.0, 75.0):
+        w = F.optimal_ring_weights(split, alpha, floor=0.0)
+        best = F.margin(split, alpha, weighting=w)
+        for other in ["m", "flat"] + [rng.uniform(0, 1, LMAX + 1) for _ in range(5)]:
+            assert best >= F.margin(split, alpha, weighting=other) - 1e-9
+    # the Doppler part anticorrelates on small circles: their high modes lose weight against large circles
+    # (each mode counts by W_m P^tot_m = rho_m, its correlation between the two views)
+    x30, x75 = ((lambda pp, pt: F.optimal_ring_weights(split, a, floor=0.0) * pt)(*F.ring_mode_spectra(split, a))
+                for a in (30.0, 75.0))
+    hi = slice(LMAX // 2, LMAX + 1)
+    assert np.sum(x30[hi]) / np.sum(x30) < np.sum(x75[hi]) / np.sum(x75)
+
+
+def test_weight_table_interpolates_in_radius(split):
+    tab = F.ring_weight_table(split, step=5.0)
+    assert tab.shape == (18, LMAX + 1)
+    w = F.weights_at(tab, 62.5, 64, step=5.0)
+    assert w.shape == (33,)
+    assert np.allclose(w[: LMAX + 1], 0.5 * (tab[11] + tab[12]))   # rows are 5, 10, ... 90 deg
+    assert np.all(w[LMAX + 1:] == 0)
+    assert np.allclose(F.weights_at(tab, 60.0, 64, step=5.0)[: LMAX + 1], F.optimal_ring_weights(split, 60.0))
+
+
+def test_filter_ids():
+    from types import SimpleNamespace
+
+    assert F.filter_id(PrepareSection()) == "none"
+    tab = np.linspace(0, 1, 12).reshape(3, 4)
+    fid = F.filter_id(SimpleNamespace(filter="optimal"), tab)
+    assert fid.startswith("optimal:") and fid == F.filter_id(SimpleNamespace(filter="optimal"), tab.copy())
+    assert fid != F.filter_id(SimpleNamespace(filter="optimal"), tab * 2)
+
+
+def test_expected_s_matches_sachs_wolfe_skies_with_noise():
+    # Cornish, Spergel & Starkman (1998): on a Sachs-Wolfe sky the two views of a matched circle are
+    # identical, so S falls below 1 only through what differs, here white noise.  The model's expected S
+    # (SourceSplit with everything matched; the sky's own C_l) must equal the measured mean S of true
+    # pairs within its scatter, for both ring weightings and the optimal filter's weights.
+    import healpy as hp
+    from twinring import rings
+    from twinring.statistic import s_curve
+    from twinring.topology import manifolds as M
+    from twinring.topology import skies as S
+    from twinring.topology.circles import predict_pairs
+
+    lmax, fwhm = 40, 6.0
+    sp = M.build_space("E1", [0.9, 0.9, 0.9], observer=(0.13, 0.07, 0.21))
+    rows = [r for r in predict_pairs(sp) if 45 < r["radius_deg"] < 80]
+    bl = hp.gauss_beam(math.radians(fwhm), lmax=lmax)
+    cls, got = [], {}
+    for seed in (1, 2):
+        _, alm = S.make_sky(sp, nside=32, lmax=lmax, fwhm_deg=0.0, physics="sw", seed=seed, return_alm=True)
+        cls.append(hp.alm2cl(alm))
+    cl = np.mean(cls, axis=0)
+    nl = np.full(lmax + 1, 0.3 * np.sum(bl ** 2 * cl * (2 * np.arange(lmax + 1) + 1)) / (4 * np.pi) * 4 * np.pi / 1500)
+    zero = np.zeros(lmax + 1)
+    model = F.SourceSplit(lmax=lmax, total=cl, match=cl, doppler=zero, isw=zero, match_doppler=zero, match_isw=zero,
+                          doppler_isw=zero, camb_total=cl)
+    for seed in (1, 2):
+        _, alm = S.make_sky(sp, nside=32, lmax=lmax, fwhm_deg=0.0, physics="sw", seed=seed, return_alm=True)
+        np.random.seed(100 + seed)                     # healpy's synalm draws from numpy's global generator
+        a = hp.almxfl(alm, bl) + hp.synalm(nl, lmax=lmax)
+        for row in rows:
+            c1 = rings.lonlat_to_vec(row["lon1_deg"], row["lat1_deg"])
+            c2 = rings.lonlat_to_vec(row["lon2_deg"], row["lat2_deg"])
+            al = math.radians(row["radius_deg"])
+            t1, _ = rings.sample_rings(a, lmax, c1, al, 128, other=c2)
+            t2, _ = rings.sample_rings(a, lmax, c2, al, 128, other=c1)
+            for name in ("m", "flat", "optimal"):
+                w = F.optimal_ring_weights(model, row["radius_deg"], bl, nl) if name == "optimal" else name
+                s = float(np.max(s_curve(t1[0], t2[0], bool(row["flip"]), weighting=w)))
+                got.setdefault(name, []).append((s, row["radius_deg"], w))
+    for name, vals in got.items():
+        s = np.array([v[0] for v in vals])
+        want = np.mean([F.expected_s(model, r, None, bl, nl, w)[0] for _, r, w in vals])
+        assert 0.5 < want < 0.95                       # noise matters: the check is not the trivial S = 1
+        assert abs(s.mean() - want) < 3 * s.std(ddof=1) / math.sqrt(s.size) + 0.02, (name, s.mean(), want)
+
+
+def test_the_same_filter_is_in_data_simulation_and_injection_tables(tmp_path):
+    # provenance (issue 10): one filter, named by its hash, in every table that depends on it
+    import yaml
+    from astropy.table import Table
+    from twinring.cli import main
+
+    cfg = {
+        "topology": {"space": "E1", "lengths": [1.2, 1.2, 1.2]},
+        "sky": {"nside": 16, "lmax": 24, "fwhm_deg": 6.0, "seed": 3, "noise_uk_arcmin": 50.0},
+        "prepare": {"nside": 16, "lmax": 24, "fwhm_deg": 8.0, "input_fwhm_deg": 6.0, "filter": "optimal"},
+        "search": {"nside_centers": 4, "radius_deg": [30, 80, 25], "top": 3},
+        "calibrate": {"simulations": 19, "spectrum": "theory", "noise_uk_arcmin": 50.0},
+        "inject": {"radii_deg": [60.0], "realizations": 1, "physics": "sw"},
+        "bound": {},
+        "output": {"dir": str(tmp_path / "out")},
+        "compute": {"progress": False},
+    }
+    (tmp_path / "c.yaml").write_text(yaml.safe_dump(cfg))
+    assert main(["run", str(tmp_path / "c.yaml")]) == 0
+    out = tmp_path / "out"
+    cand = Table.read(out / "candidates.ecsv")
+    fid = cand.meta["filter"]
+    assert fid.startswith("optimal:") and len(fid) == len("optimal:") + 12
+    assert cand.meta["weighting"] == "optimal"
+    assert Table.read(out / "thresholds.ecsv").meta["filter"] == fid
+    assert Table.read(out / "injections.ecsv").meta["filter"] == fid
+    # the hash is the filter the search used: recomputed from the config it matches
+    from twinring.config import load_config
+    from twinring.filters import filter_id, run_filter
+
+    c = load_config(out / "config.yaml")
+    assert filter_id(c.prepare, run_filter(c)) == fid
