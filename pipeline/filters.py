@@ -69,7 +69,7 @@ import numpy as np
 
 FILTERS = ("none", "multipole", "optimal")
 RING_FLOOR = 1e-3    # ring-mode power floor for the optimal weights, relative to the strongest mode (mask leakage, aliasing)
-TABLE_STEP_DEG = 0.5  # radius step of the optimal filter's weight table (linear interpolation between)
+TABLE_STEP_DEG = 1.0  # radius step of the optimal filter's weight table (linear interpolation between)
 REF_RADII_DEG = (20.0, 30.0, 40.0, 50.0, 60.0, 70.0)
 ETA_CUT = 2.2       # conformal times after ETA_CUT x the visibility peak count as "late" (ISW, reionisation)
 X_FLOOR = 1e-6       # smallest squared filter weight relative to the largest
@@ -156,8 +156,43 @@ def _cl(tr, a, b):
     return tr["tcmb_uk"] ** 2 * 4 * np.pi * np.trapezoid(prim * a * b, np.log(q), axis=1)
 
 
+SPLIT_FIELDS = ("total", "match", "doppler", "isw", "match_doppler", "match_isw", "doppler_isw", "camb_total")
+
+
+def cache_dir():
+    """Where computed source splits are kept between runs: $TWINRING_CACHE, else ~/.cache/twinring."""
+    import os
+    from pathlib import Path
+
+    return Path(os.environ.get("TWINRING_CACHE") or Path.home() / ".cache" / "twinring")
+
+
 @functools.lru_cache(maxsize=4)
 def _source_split(params, lmax, q_stride):
+    """The split, from the disk cache when an earlier run computed it (plain npz arrays, no pickle)."""
+    import os
+
+    key = hashlib.sha256(repr(("source-split-1", params, lmax, q_stride)).encode()).hexdigest()[:20]
+    path = cache_dir() / f"split-{key}.npz"
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            arrays = {f: np.asarray(z[f], float) for f in SPLIT_FIELDS}
+        if all(a.shape == (lmax + 1,) for a in arrays.values()):
+            return SourceSplit(lmax=lmax, **arrays)
+    except (OSError, ValueError, KeyError):
+        pass
+    out = _compute_split(params, lmax, q_stride)
+    try:                                   # atomic: write a temporary file, then rename it into place
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp.npz")
+        np.savez(tmp, **{f: getattr(out, f) for f in SPLIT_FIELDS})
+        os.replace(tmp, path)
+    except OSError:
+        pass                               # a read-only home only costs the recomputation
+    return out
+
+
+def _compute_split(params, lmax, q_stride):
     from . import cosmology
 
     c = cosmology._Defaults(*params)
@@ -253,20 +288,17 @@ def ring_weights(lmax, weighting):
     return w
 
 
-def expected_s(split: SourceSplit, alpha_deg, filt=None, bl=None, nl=None, weighting="m"):
+def expected_s(split: SourceSplit, alpha_deg, filt=None, bl=None, nl=None, weighting="m", fwhm_deg=0.0,
+               offset_deg=0.0):
     """(expected S of a true pair, null spread sigma of S) at radius alpha for filter ``filt`` (per l).
 
     ``bl``: beam window (default 1), ``nl``: noise spectrum (uK^2, default 0); ``weighting``: ``'m'``,
-    ``'flat'`` or ring weights per mode (:func:`optimal_ring_weights`).
+    ``'flat'`` or ring weights per mode (:func:`optimal_ring_weights`); ``fwhm_deg``: the Gaussian
+    beam's width for :func:`beam_coherence`; ``offset_deg``: :func:`offset_coherence`.
     """
     lmax = split.lmax
-    f2 = np.ones(lmax + 1) if filt is None else np.asarray(filt, float)[: lmax + 1] ** 2
-    b2 = np.ones(lmax + 1) if bl is None else np.asarray(bl, float)[: lmax + 1] ** 2
-    n = np.zeros(lmax + 1) if nl is None else np.asarray(nl, float)[: lmax + 1]
-    lam = _lambda_sq(lmax, float(alpha_deg))
     wm = ring_weights(lmax, weighting)
-    p_pair = (f2 * b2 * pair_spectrum(split, alpha_deg)) @ lam
-    p_tot = (f2 * (b2 * split.total + n)) @ lam
+    p_pair, p_tot = ring_mode_spectra(split, alpha_deg, bl, nl, offset_deg, fwhm_deg, filt)
     den = np.sum(wm * p_tot)
     return float(np.sum(wm * p_pair) / den), float(math.sqrt(np.sum(wm ** 2 * p_tot ** 2) / 2.0) / den)
 
@@ -341,17 +373,82 @@ def filter_hash(f) -> str:
 
 
 # --------------------------------------------------------------------------- the optimal filter: ring modes, per radius
-def ring_mode_spectra(split: SourceSplit, alpha_deg, bl=None, nl=None):
+def offset_coherence(lmax, offset_deg) -> np.ndarray:
+    """Mean correlation, per l, of the two views of a point sampled ``offset_deg`` (rms) apart:
+    exp(-l(l+1) theta^2 / 4), the average of P_l(cos theta) over a 2-d Gaussian displacement of
+    rms theta (small angles; common practice, no source)."""
+    ell = np.arange(lmax + 1, dtype=float)
+    return np.exp(-ell * (ell + 1) * math.radians(float(offset_deg)) ** 2 / 4.0)
+
+
+def grid_offset_deg(scfg) -> float:
+    """Rms distance between the points the search compares on a true pair it sees from its grid:
+    sqrt((dr^2 + dc^2) / 3), dr the radius step, dc the centre spacing (0 for listed pairs).
+
+    Each centre lies uniformly in a grid cell (rms dc / sqrt 6 off, independently for the two
+    circles) and both radii share one offset (rms dr / sqrt 12, seen from opposite sides once
+    matched, so doubled)."""
+    import healpy as hp
+
+    radii = np.asarray(scfg.radii_deg(), float)
+    dr = float(np.min(np.diff(radii))) if radii.size > 1 else 0.0
+    dc = math.degrees(hp.nside2resol(int(scfg.nside_centers))) if scfg.family != "listed" else 0.0
+    return math.sqrt((dr ** 2 + dc ** 2) / 3.0)
+
+
+BEAM_GRID = 121      # points per axis of the beam coherence's 2-d wavenumber integral
+
+
+def beam_coherence(mmax, alpha_deg, fwhm_deg, n=BEAM_GRID) -> np.ndarray:
+    """Correlation of ring mode m (0..mmax) between the two views of a matched circle that the beam
+    alone leaves, for a field with a scale-invariant potential (P(k) ~ k^-3, Sachs-Wolfe).
+
+    The two last-scattering spheres cross along the circle at the angle between the lines of sight,
+    theta = 180 deg - 2 alpha.  Along the circle both views see the same points; across it the beam
+    (Gaussian, rms sigma) averages neighbours that lie on different spheres.  Locally (flat sky,
+    distances in units of chi), with u along the circle, t_i across it on sphere i and n_1 the first
+    line of sight (t_2 = cos theta t_1 + sin theta n_1), mode m has k_u = m / sin alpha and
+
+        rho_m = int P(k) exp(-sigma^2 (k_t1^2 + k_t2^2) / 2) / int P(k) exp(-sigma^2 k_t1^2)
+
+    over (k_t1, k_n1): 1 without a beam or at alpha = 90 deg, falling as the beam widens, the circle
+    shrinks or m grows.  Measured on Sachs-Wolfe torus skies with a 3 deg beam (this module's
+    benchmark notes, README) within the scatter of three skies.
+    """
+    out = np.ones(int(mmax) + 1)
+    sigma = math.radians(float(fwhm_deg)) / math.sqrt(8.0 * math.log(2.0))
+    if sigma <= 0:
+        return out
+    a = math.radians(float(alpha_deg))
+    th = math.pi - 2.0 * a
+    c, s = math.cos(th), math.sin(th)
+    q = np.linspace(-8.0 / sigma, 8.0 / sigma, int(n))
+    qt, qn = np.meshgrid(q, q, indexing="ij")
+    damp_auto = np.exp(-sigma ** 2 * qt ** 2)
+    damp_cross = np.exp(-sigma ** 2 * (qt ** 2 + (c * qt + s * qn) ** 2) / 2.0)
+    r2 = qt ** 2 + qn ** 2
+    for m in range(1, int(mmax) + 1):
+        p = (r2 + (m / math.sin(a)) ** 2) ** -1.5
+        out[m] = float(np.sum(p * damp_cross) / np.sum(p * damp_auto))
+    return out
+
+
+def ring_mode_spectra(split: SourceSplit, alpha_deg, bl=None, nl=None, offset_deg=0.0, fwhm_deg=0.0, filt=None):
     """(P^pair_m, P^tot_m), m = 0..lmax: power of ring mode m shared by the two views of a true pair
-    of radius alpha, and the total power of mode m on one ring (beam ``bl``, noise ``nl``)."""
+    of radius alpha, and the total power of mode m on one ring (beam ``bl``, noise ``nl``, per-l
+    filter ``filt``; the views sampled ``offset_deg`` rms apart: :func:`offset_coherence`; the beam's
+    different neighbours on the two spheres, for a Gaussian beam of ``fwhm_deg``: :func:`beam_coherence`)."""
     lmax = split.lmax
+    f2 = np.ones(lmax + 1) if filt is None else np.asarray(filt, float)[: lmax + 1] ** 2
     b2 = np.ones(lmax + 1) if bl is None else np.asarray(bl, float)[: lmax + 1] ** 2
     n = np.zeros(lmax + 1) if nl is None else np.asarray(nl, float)[: lmax + 1]
     lam = _lambda_sq(lmax, float(alpha_deg))
-    return (b2 * pair_spectrum(split, alpha_deg)) @ lam, (b2 * split.total + n) @ lam
+    shared = f2 * b2 * pair_spectrum(split, alpha_deg) * offset_coherence(lmax, offset_deg)
+    return (shared @ lam) * beam_coherence(lmax, alpha_deg, fwhm_deg), (f2 * (b2 * split.total + n)) @ lam
 
 
-def optimal_ring_weights(split: SourceSplit, alpha_deg, bl=None, nl=None, floor=None) -> np.ndarray:
+def optimal_ring_weights(split: SourceSplit, alpha_deg, bl=None, nl=None, floor=None, offset_deg=0.0,
+                         fwhm_deg=0.0) -> np.ndarray:
     """Ring-mode weights W_m (m = 0..lmax, max 1) of the optimal filter at radius alpha.
 
     S sums products of ring modes m; for an isotropic sky the modes of one ring are independent,
@@ -360,9 +457,12 @@ def optimal_ring_weights(split: SourceSplit, alpha_deg, bl=None, nl=None, floor=
     matched filter over independent modes), each mode then counting by its correlation
     rho_m = P^pair_m / P^tot_m.  Modes whose shared power is negative (the Doppler part seen head
     on) get 0: S keeps one sign.  ``floor`` x the strongest mode's power is added to P^tot_m, so
-    modes the beam has emptied (whose ring content is rounding) get no weight.
+    modes the beam has emptied (whose ring content is rounding) get no weight.  ``offset_deg``:
+    rms distance between the compared points of a true pair seen from the search grid
+    (:func:`grid_offset_deg`), and ``fwhm_deg``, the Gaussian beam's width (:func:`beam_coherence`),
+    decorrelate the small scales.
     """
-    pp, pt = ring_mode_spectra(split, alpha_deg, bl, nl)
+    pp, pt = ring_mode_spectra(split, alpha_deg, bl, nl, offset_deg, fwhm_deg)
     pt = pt + (RING_FLOOR if floor is None else floor) * float(np.max(pt[1:]))
     w = np.zeros_like(pp)
     w[1:] = np.maximum(pp[1:], 0.0) / pt[1:] ** 2
@@ -371,10 +471,12 @@ def optimal_ring_weights(split: SourceSplit, alpha_deg, bl=None, nl=None, floor=
     return w / w.max()
 
 
-def ring_weight_table(split: SourceSplit, bl=None, nl=None, step=TABLE_STEP_DEG) -> np.ndarray:
+def ring_weight_table(split: SourceSplit, bl=None, nl=None, step=TABLE_STEP_DEG, offset_deg=0.0,
+                      fwhm_deg=0.0) -> np.ndarray:
     """:func:`optimal_ring_weights` at radii step, 2 step, ... 90 deg: array (n_radii, lmax + 1)."""
     radii = np.arange(1, int(round(90.0 / step)) + 1) * step
-    return np.stack([optimal_ring_weights(split, r, bl, nl) for r in radii])
+    return np.stack([optimal_ring_weights(split, r, bl, nl, offset_deg=offset_deg, fwhm_deg=fwhm_deg)
+                     for r in radii])
 
 
 def weights_at(table, radius_deg, nsamp, step=TABLE_STEP_DEG) -> np.ndarray:
@@ -406,7 +508,7 @@ def noise_spectrum(prep, noise_uk_arcmin) -> np.ndarray | None:
 
 
 @functools.lru_cache(maxsize=8)
-def _ring_filter(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin, params):
+def _ring_filter(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin, params, offset_deg):
     import healpy as hp
     from types import SimpleNamespace
 
@@ -415,24 +517,26 @@ def _ring_filter(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin, params):
     split = source_split(lmax, cosmology._Defaults(*params))
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else None
     prep = SimpleNamespace(fwhm_deg=fwhm_deg, input_fwhm_deg=input_fwhm_deg, lmax=lmax)
-    table = ring_weight_table(split, bl, noise_spectrum(prep, noise_uk_arcmin))
+    table = ring_weight_table(split, bl, noise_spectrum(prep, noise_uk_arcmin), offset_deg=offset_deg,
+                              fwhm_deg=fwhm_deg)
     table.setflags(write=False)
     return table
 
 
-def ring_filter(prep, noise_uk_arcmin=0.0, cosmo=None) -> np.ndarray | None:
+def ring_filter(prep, noise_uk_arcmin=0.0, cosmo=None, offset_deg=0.0) -> np.ndarray | None:
     """The optimal filter's ring-weight table for ``prepare.filter: optimal`` (None otherwise).
 
-    Computed once per process for the prepared beam, the survey's white noise level and the
-    cosmology (CAMB's source split: about a minute at lmax 128), then shipped in the search plan to
-    every worker, so data, simulations and injections are weighted alike.
+    Computed once per process for the prepared beam, the survey's white noise level, the cosmology
+    (CAMB's source split: about a minute at lmax 128) and the search grid's offset
+    (:func:`grid_offset_deg`), then shipped in the search plan to every worker, so data,
+    simulations and injections are weighted alike.
     """
     from . import cosmology
 
     if getattr(prep, "filter", "none") != "optimal":
         return None
     return _ring_filter(int(prep.lmax), float(prep.fwhm_deg), float(prep.input_fwhm_deg),
-                        float(noise_uk_arcmin or 0.0), cosmology._params(cosmo))
+                        float(noise_uk_arcmin or 0.0), cosmology._params(cosmo), round(float(offset_deg), 9))
 
 
 def filter_id(prep, table=None) -> str:
@@ -450,11 +554,35 @@ def filter_id(prep, table=None) -> str:
 
 def run_filter(cfg) -> np.ndarray | None:
     """:func:`ring_filter` for a run config: its prepare section, calibrate.noise_uk_arcmin (the
-    survey's white noise level as the simulations add it) and its cosmology.  Data, simulation and
-    injection searches all take the table from here."""
-    return ring_filter(cfg.prepare, cfg.calibrate.noise_uk_arcmin, getattr(cfg, "cosmology", None))
+    survey's white noise level as the simulations add it), its cosmology and its search grid.  Data,
+    simulation and injection searches all take the table from here."""
+    return ring_filter(cfg.prepare, cfg.calibrate.noise_uk_arcmin, getattr(cfg, "cosmology", None),
+                       grid_offset_deg(cfg.search))
 
 
 def weighting_name(cfg) -> str:
     """The ring weighting a run's search uses: ``optimal`` (the filter's, per radius) or search.weighting."""
     return "optimal" if getattr(cfg.prepare, "filter", "none") == "optimal" else cfg.search.weighting
+
+
+def matched_only(split: SourceSplit) -> SourceSplit:
+    """The Sachs-Wolfe limit of a split: its match part is all there is (every view agrees)."""
+    zero = np.zeros_like(split.match)
+    return SourceSplit(lmax=split.lmax, total=split.match, match=split.match, doppler=zero, isw=zero,
+                       match_doppler=zero, match_isw=zero, doppler_isw=zero, camb_total=split.camb_total)
+
+
+def expected_pair_s(cfg, radius_deg, physics="full", noise_uk_arcmin=0.0, ring_table=None) -> float:
+    """The model's expected S of a true circle pair of ``radius_deg`` in a run: the run's filter and ring
+    weighting, prepared beam, ``noise_uk_arcmin`` white noise on the input, its search grid's offset,
+    and ``physics`` (``sw``: every view agrees; ``full``: the source split)."""
+    import healpy as hp
+
+    prep = cfg.prepare
+    split = source_split(prep.lmax, getattr(cfg, "cosmology", None))
+    if physics == "sw":
+        split = matched_only(split)
+    bl = hp.gauss_beam(math.radians(prep.fwhm_deg), lmax=prep.lmax)
+    w = weights_at(ring_table, radius_deg, 2 * prep.lmax + 2) if ring_table is not None else cfg.search.weighting
+    return expected_s(split, radius_deg, filter_window(prep), bl, noise_spectrum(prep, noise_uk_arcmin), w,
+                      fwhm_deg=prep.fwhm_deg, offset_deg=grid_offset_deg(cfg.search))[0]

@@ -433,6 +433,24 @@ def injections_table(results) -> Table:
     return t
 
 
+def add_expected_s(rec: Table, inj: Table, cfg, ctx) -> None:
+    """Columns ``s_mean`` (measured mean S of the injections of each size) and ``s_expected`` (the model's
+    expected S of a true pair at that radius: twinring.filters.expected_pair_s) of a recovery table."""
+    from .filters import expected_pair_s
+
+    noise = instrument(cfg)[0]
+    means, model = [], []
+    for row in rec:
+        s = np.asarray(inj["s"], float)[np.isclose(np.asarray(inj["size_chi"], float), row["size_chi"])]
+        s = s[np.isfinite(s)]
+        means.append(float(s.mean()) if s.size else np.nan)
+        model.append(expected_pair_s(cfg, float(row["radius_deg"]), ctx.recipe.physics, noise, ctx.ring_filter))
+    rec["s_mean"] = np.array(means, float)
+    rec["s_expected"] = np.array(model, float)
+    for c in ("s_mean", "s_expected"):
+        rec[c].info.format = ".4f"
+
+
 def binomial_interval(k, n, confidence=CONFIDENCE):
     """Clopper-Pearson interval of a binomial proportion (scipy.stats.binomtest)."""
     if n == 0:
@@ -601,6 +619,7 @@ def inject_run(cfg, run, sky=None):
     dt = time.time() - t0
     inj = injections_table([res[u] for u in units])
     rec = recovery_table(inj)
+    add_expected_s(rec, inj, cfg, ctx)
     meta = provenance(cfg, input_files(cfg), "inject")
     meta.update(space=shape.name, shape_lengths=list(shape.lengths), distance_per_size=d1, mode=ctx.mode,
                 false_alarm=rate, threshold=cfg.inject.threshold, calibration_n_sims=model.n_sims,

@@ -595,7 +595,8 @@ def summarize(run_dir, cfg=None, figures=()):
                 out["calibration"]["rates_not_usable"] = [
                     a for a in rates if not np.all(np.asarray(thr["usable"])[np.isclose(thr["false_alarm"], a)])]
     if rec is not None:
-        out["recovery"] = [_row_dict(r, ("size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high"))
+        out["recovery"] = [_row_dict(r, ("size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high")
+                                     + tuple(c for c in ("s_mean", "s_expected") if c in rec.colnames))
                            for r in rec]
         out["recovery_setup"] = {k: rec.meta.get(k) for k in ("space", "mode", "threshold", "false_alarm",
                                                                "realizations", "noise_uk_arcmin", "physics")}
@@ -707,10 +708,12 @@ def summary_markdown(s) -> str:
 
         lines += consistency_markdown(s["consistency"])
     if "recovery" in s:
-        lines += ["", "| radius [deg] | size [chi] | recovered | 95 % interval |", "|---|---|---|---|"]
+        lines += ["", "| radius [deg] | size [chi] | recovered | 95 % interval | mean S, injections | "
+                      "expected S, model |", "|---|---|---|---|---|---|"]
         for r in s["recovery"]:
             lines.append(f"| {r['radius_deg']:.1f} | {r['size_chi']:.3f} | {r['detected']}/{r['n']} | "
-                         f"{_fmt(r['ci_low'])}-{_fmt(r['ci_high'])} |")
+                         f"{_fmt(r['ci_low'])}-{_fmt(r['ci_high'])} | {_fmt(r.get('s_mean'))} | "
+                         f"{_fmt(r.get('s_expected'))} |")
     if s.get("figures"):
         lines += ["", "## Figures", ""]
         for f in s["figures"]:

@@ -192,14 +192,18 @@ def test_expected_s_matches_sachs_wolfe_skies_with_noise():
             t1, _ = rings.sample_rings(a, lmax, c1, al, 128, other=c2)
             t2, _ = rings.sample_rings(a, lmax, c2, al, 128, other=c1)
             for name in ("m", "flat", "optimal"):
-                w = F.optimal_ring_weights(model, row["radius_deg"], bl, nl) if name == "optimal" else name
+                w = (F.optimal_ring_weights(model, row["radius_deg"], bl, nl, fwhm_deg=fwhm) if name == "optimal"
+                     else name)
                 s = float(np.max(s_curve(t1[0], t2[0], bool(row["flip"]), weighting=w)))
                 got.setdefault(name, []).append((s, row["radius_deg"], w))
     for name, vals in got.items():
         s = np.array([v[0] for v in vals])
-        want = np.mean([F.expected_s(model, r, None, bl, nl, w)[0] for _, r, w in vals])
+        want = np.mean([F.expected_s(model, r, None, bl, nl, w, fwhm_deg=fwhm)[0] for _, r, w in vals])
+        no_beam = np.mean([F.expected_s(model, r, None, bl, nl, w)[0] for _, r, w in vals])
+        # the beam's different neighbours on the two spheres (beam_coherence) account for part of the loss
+        assert abs(s.mean() - want) < abs(s.mean() - no_beam), (name, s.mean(), want, no_beam)
         assert 0.5 < want < 0.95                       # noise matters: the check is not the trivial S = 1
-        assert abs(s.mean() - want) < 3 * s.std(ddof=1) / math.sqrt(s.size) + 0.02, (name, s.mean(), want)
+        assert abs(s.mean() - want) < 3 * s.std(ddof=1) / math.sqrt(s.size), (name, s.mean(), want)
 
 
 def test_the_same_filter_is_in_data_simulation_and_injection_tables(tmp_path):
@@ -228,9 +232,73 @@ def test_the_same_filter_is_in_data_simulation_and_injection_tables(tmp_path):
     assert cand.meta["weighting"] == "optimal"
     assert Table.read(out / "thresholds.ecsv").meta["filter"] == fid
     assert Table.read(out / "injections.ecsv").meta["filter"] == fid
+    # the report shows the model's expected S beside the injections' measured mean S (issue 10, item 3)
+    rec = Table.read(out / "recovery.ecsv")
+    inj = Table.read(out / "injections.ecsv")
+    assert rec["s_mean"][0] == pytest.approx(np.mean(inj["s"][np.isfinite(inj["s"])]))
+    assert 0.3 < rec["s_expected"][0] <= 1.0
+    assert "expected S, model" in (out / "summary.md").read_text()
     # the hash is the filter the search used: recomputed from the config it matches
     from twinring.config import load_config
     from twinring.filters import filter_id, run_filter
 
     c = load_config(out / "config.yaml")
     assert filter_id(c.prepare, run_filter(c)) == fid
+
+
+def test_offset_coherence_is_the_mean_legendre_correlation():
+    # the mean of P_l(cos theta) (scipy) over a 2-d Gaussian displacement of rms 2 deg, by quadrature
+    # over the Rayleigh distribution, against exp(-l(l+1) theta_rms^2 / 4)
+    from scipy.special import eval_legendre
+
+    rms = math.radians(2.0)
+    s = rms / math.sqrt(2)
+    th = np.linspace(0, 8 * s, 4001)
+    pdf = th / s ** 2 * np.exp(-th ** 2 / (2 * s ** 2))
+    for ell in (2, 10, 30, 60, 90):
+        want = np.trapezoid(pdf * eval_legendre(ell, np.cos(th)), th)
+        assert F.offset_coherence(ell, 2.0)[ell] == pytest.approx(want, abs=0.01)
+
+
+def test_grid_offset_and_weights_follow_the_search_grid(split):
+    from twinring.config import SearchSection
+
+    coarse = SearchSection(nside_centers=8, radius_deg=(20.0, 80.0, 4.0))
+    fine = SearchSection(nside_centers=64, radius_deg=(20.0, 80.0, 0.5))
+    # centre spacing of HEALPix nside 8: sqrt(4 pi / 768) rad = 7.329 deg (healpy nside2resol)
+    assert F.grid_offset_deg(coarse) == pytest.approx(math.sqrt((4.0 ** 2 + 7.329 ** 2) / 3), rel=1e-3)
+    assert F.grid_offset_deg(fine) < F.grid_offset_deg(coarse)
+    # a coarser grid moves weight (as rho_m = W_m P_m) to the low modes
+    pt = F.ring_mode_spectra(split, 60.0)[1]
+    lo, hi = (F.optimal_ring_weights(split, 60.0, offset_deg=o, floor=0.0) * pt for o in (0.0, 6.0))
+    k = np.arange(LMAX + 1)
+    assert np.sum(k * hi) / np.sum(hi) < np.sum(k * lo) / np.sum(lo)
+
+
+def test_beam_coherence_limits():
+    # no beam, or circles of 90 deg (the two spheres touch: theta = 0), leave the views identical;
+    # the loss grows with m, with the beam and as the circle shrinks
+    assert np.allclose(F.beam_coherence(40, 50.0, 0.0), 1.0)
+    assert np.allclose(F.beam_coherence(40, 90.0, 3.0), 1.0, atol=1e-9)
+    r = F.beam_coherence(80, 50.0, 3.0)
+    assert np.all(np.diff(r[1:]) < 0) and 0.3 < r[80] < 0.9
+    assert F.beam_coherence(80, 50.0, 5.0)[60] < r[60] < F.beam_coherence(80, 70.0, 3.0)[60]
+
+
+def test_source_split_disk_cache(tmp_path, monkeypatch):
+    # the split is kept as plain arrays (npz, no pickle) and read back identically; a damaged file is
+    # recomputed and replaced
+    monkeypatch.setenv("TWINRING_CACHE", str(tmp_path))
+    F._source_split.cache_clear()
+    a = F.source_split(8, q_stride=4)
+    files = list(tmp_path.glob("split-*.npz"))
+    assert len(files) == 1
+    F._source_split.cache_clear()
+    b = F.source_split(8, q_stride=4)
+    for f in F.SPLIT_FIELDS:
+        assert np.array_equal(getattr(a, f), getattr(b, f))
+    files[0].write_bytes(b"not an npz")
+    F._source_split.cache_clear()
+    c = F.source_split(8, q_stride=4)
+    assert np.allclose(c.total, a.total) and files[0].stat().st_size > 100
+    F._source_split.cache_clear()
