@@ -160,8 +160,14 @@ def test_top_partners_equals_brute_force():
             cand = np.flatnonzero(ok[i])
             for j in cand[np.lexsort((cand, -C[i, cand]))[:K]]:
                 ref.add((min(i, j), max(i, j)))
-        for mem in (4.0, 0.002):          # blocking by memory must not change the answer
-            i, j = screen.top_partners(F, cen, sep_cos, K, use, memory_gb=mem)
+        for mem, threads, tile in ((4.0, 1, 4096), (0.002, 1, 4096), (4.0, 2, 64), (0.002, 2, 37)):
+            # blocking by memory, tiles of a block and threads must not change the answer
+            monkey = pytest.MonkeyPatch()
+            monkey.setattr(screen, "TILE_COLS", tile)
+            try:
+                i, j = screen.top_partners(F, cen, sep_cos, K, use, memory_gb=mem, threads=threads)
+            finally:
+                monkey.undo()
             assert np.all(i < j)
             assert set(zip(i.tolist(), j.tolist())) == ref
 
