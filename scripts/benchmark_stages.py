@@ -85,8 +85,11 @@ def main(argv=None):
         spec = search.ring_set(plan, 0)
         screen.excluded_partners(plan.centres, plan.sep_cos)
         t = time.perf_counter()
+        import inspect
+
+        kw = {"threads": plan.threads} if "threads" in inspect.signature(screen.screen_pairs).parameters else {}
         screen.screen_pairs(spec, plan.centres, plan.sep_cos, plan.screen_partners, plan.min_valid_fraction,
-                            plan.screen_mmax, plan.memory_gb)
+                            plan.screen_mmax, plan.memory_gb, **kw)
         print(f"screen64 seconds={time.perf_counter() - t:.2f} load={load()}", flush=True)
         clear()
     if "sim" in args.only:
