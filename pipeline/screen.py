@@ -78,6 +78,7 @@ was faster at the survival required (figures in README, "Measured performance").
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 import healpy as hp
@@ -406,36 +407,36 @@ def top_partners(F, centres, sep_cos, partners, use=None, memory_gb=4.0, threads
     excl = excluded_partners(centres, sep_cos)
     thr = _row_thresholds(F, centres, sep_cos, partners, use, excl, threads)
     rows_per = block_rows_for(n, memory_gb)
-    I, J, V = [], [], []
-    buf = np.empty(rows_per * n, dtype=np.float32)
-    lower = np.tri(rows_per, dtype=bool)
-    for lo in range(0, n, rows_per):
-        hi = min(n, lo + rows_per)
-        nr, nc = hi - lo, n - lo
-        c = buf[:nr * nc].reshape(nr, nc)
-        np.matmul(F[lo:hi], F[lo:].T, out=c)        # rows lo..hi against columns lo..n
-        c[:, :nr][lower[:nr, :nr]] = -np.inf        # each pair once, never a centre with itself
-        if excl is not None:
+    width = max(1, min(TILE_COLS, n))
+    tasks = [(lo, a) for lo in range(0, n, rows_per) for a in range(lo, n, width)]
+    out = [None] * len(tasks)
+    local = threading.local()
+
+    def tile(k):
+        lo, a = tasks[k]
+        hi, b = min(n, lo + rows_per), min(n, a + width)
+        buf = getattr(local, "buf", None)
+        if buf is None:
+            buf = local.buf = np.empty(rows_per * width, dtype=np.float32)
+        c = buf[:(hi - lo) * (b - a)].reshape(hi - lo, b - a)
+        np.matmul(F[lo:hi], F[a:b].T, out=c)       # rows lo..hi against columns a..b (a >= lo)
+        if excl is not None:                        # partners outside the separation range
             indptr, indices = excl
-            cnt = np.diff(indptr[lo:hi + 1])
-            r = np.repeat(np.arange(nr), cnt)
-            cc = indices[indptr[lo]:indptr[hi]].astype(np.int64) - lo
-            keep = cc >= 0
-            c[r[keep], cc[keep]] = -np.inf
+            cols = indices[indptr[lo]:indptr[hi]]
+            inside = (cols >= a) & (cols < b)
+            r = np.repeat(np.arange(hi - lo), np.diff(indptr[lo:hi + 1]))[inside]
+            c[r, cols[inside] - a] = -np.inf
         else:
-            c[~_allowed_dots(centres[lo:hi] @ centres[lo:].T, sep_cos)] = -np.inf
-        tr = thr[lo:hi]
-        out = [None] * ((nc + TILE_COLS - 1) // TILE_COLS)
+            c[~_allowed_dots(centres[lo:hi] @ centres[a:b].T, sep_cos)] = -np.inf
+        r, cc, v = _tile_candidates(c, thr[lo:hi], thr[a:b])
+        r += lo
+        cc += a
+        keep = cc > r                               # each pair once, never a centre with itself
+        out[k] = (r[keep].astype(np.int32), cc[keep].astype(np.int32), v[keep])
 
-        def tile(k, c=c, tr=tr, lo=lo, nc=nc):
-            a = k * TILE_COLS
-            b = min(nc, a + TILE_COLS)
-            r, cc, v = _tile_candidates(c[:, a:b], tr, thr[lo + a:lo + b])
-            out[k] = ((r + lo).astype(np.int32), (cc + lo + a).astype(np.int32), v)
-
-        _run(tile, range(len(out)), threads)
-        I += [o[0] for o in out]; J += [o[1] for o in out]; V += [o[2] for o in out]
-    del buf
+    _run(tile, range(len(tasks)), threads)
+    I = [o[0] for o in out]; J = [o[1] for o in out]; V = [o[2] for o in out]
+    del out
     I = np.concatenate(I).astype(np.int64); J = np.concatenate(J).astype(np.int64); V = np.concatenate(V)
     ok = np.isfinite(V) & use[I] & use[J]            # unusable rings take part in no pair
     I, J, V = I[ok], J[ok], V[ok]
