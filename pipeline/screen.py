@@ -49,24 +49,26 @@ requirement with any partner and are dropped before the products.
 Cost and memory
 ---------------
 All pairs of one radius are scored by float32 matrix products (BLAS), each pair
-once: ``BLOCK_ROWS`` rows of centres against the centres from the block's first
-row on (fewer rows when ``compute.memory_gb`` demands it).  Beforehand, every
-centre's level is set from a strided sample of its partners so that it has, with
-a margin, more than K partners above it (the levels only decide which scores are
-carried: any levels give the same selection).  Each block is thresholded tile by
-tile (``TILE_COLS`` columns, the tiles spread over ``compute.threads`` threads):
-every score is compared once with the lower of its row's level and the tile's
-lowest column level, and only the ~2 % that pass are tested exactly against
-their row's and their column's level; the exact top K per centre is taken among
-the survivors (~170 per centre at nside_centers 64) at the end (centres that
-fall short are redone exactly, so the result is always exactly the top-K rule).
+once, tile by tile: ``BLOCK_ROWS`` rows of centres (fewer when
+``compute.memory_gb`` demands it) against ``TILE_COLS`` columns from the block's
+first row on; each tile is one task, product included, and the tasks run on
+``compute.threads`` threads (command-line runs keep BLAS single-threaded, so the
+threads are what uses the cores).  Beforehand, every centre's level is set from
+a strided sample of its partners so that it has, with a margin, more than K
+partners above it (the levels only decide which scores are carried: any levels
+give the same selection).  In a tile every score is compared once with the
+lower of its row's level and the tile's lowest column level, and only the ~2 %
+that pass are tested exactly against their row's and their column's level; the
+exact top K per centre is taken among the survivors (~170 per centre at
+nside_centers 64) at the end (centres that fall short are redone exactly, so the
+result is always exactly the top-K rule).
 Pairs outside the separation range are excluded with precomputed per-centre
 lists (discs about the centre and its antipode), checked with the same inclusive
 test as :func:`twinring.search._block_pairs`, so the survivors are always a
 subset of the exhaustive pair set; the same lists exclude the sampled partners
-of the levels.  Memory: the features (n x D float32), one block of scores, one
-boolean tile per thread, the candidates and the separation lists; about 1 GB at
-nside_centers 64.
+of the levels.  Memory: the features (n x D float32), one tile of scores and one
+boolean tile per thread (16 MB and 4 MB), the candidates and the separation
+lists; about 1 GB at nside_centers 64.
 
 The matrix products are the floor of this design (about 3 s of one core per
 radius at nside_centers 64 in 128 directions); the selection around them costs

@@ -19,7 +19,10 @@ import sys
 import time
 import warnings
 
-import numpy as np
+# BLAS single-threaded, as the command line sets it (pipeline/cli.py): the search's own threads use the cores
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(os.path.dirname(HERE), "tests"))
