@@ -49,23 +49,38 @@ requirement with any partner and are dropped before the products.
 Cost and memory
 ---------------
 All pairs of one radius are scored by float32 matrix products (BLAS), each pair
-once: ``BLOCK_ROWS`` rows of centres against the centres from the block's first
-row on (fewer rows when ``compute.memory_gb`` demands it).  Beforehand, every
-centre's level is set from a strided sample of its partners so that it has, with
-a margin, more than K partners above it; in each block every score is compared
-once with its row's and its column's level, the few that pass are kept, and the
-exact top K per centre is taken among them at the end (centres that fall short
-are redone exactly, so the result is always exactly the top-K rule).  Pairs
-outside the separation range are excluded with precomputed per-centre lists
-(discs about the centre and its antipode), checked with the same inclusive test
-as :func:`twinring.search._block_pairs`, so the survivors are always a subset of
-the exhaustive pair set.  Memory: the features (n x D float32), one block of
-scores and two boolean masks, the candidates (~3.5 K per centre) and the
-separation lists; about 1 GB at nside_centers 64.
+once, tile by tile: ``BLOCK_ROWS`` rows of centres (fewer when
+``compute.memory_gb`` demands it) against ``TILE_COLS`` columns from the block's
+first row on; each tile is one task, product included, and the tasks run on
+``compute.threads`` threads (command-line runs keep BLAS single-threaded, so the
+threads are what uses the cores).  Beforehand, every centre's level is set from
+a strided sample of its partners so that it has, with a margin, more than K
+partners above it (the levels only decide which scores are carried: any levels
+give the same selection).  In a tile every score is compared once with the
+lower of its row's level and the tile's lowest column level, and only the ~2 %
+that pass are tested exactly against their row's and their column's level; the
+exact top K per centre is taken among the survivors (~170 per centre at
+nside_centers 64) at the end (centres that fall short are redone exactly, so the
+result is always exactly the top-K rule).
+Pairs outside the separation range are excluded with precomputed per-centre
+lists (discs about the centre and its antipode), checked with the same inclusive
+test as :func:`twinring.search._block_pairs`, so the survivors are always a
+subset of the exhaustive pair set; the same lists exclude the sampled partners
+of the levels.  Memory: the features (n x D float32), one tile of scores and one
+boolean tile per thread (16 MB and 4 MB), the candidates and the separation
+lists; about 1 GB at nside_centers 64.
+
+The matrix products are the floor of this design (about 3 s of one core per
+radius at nside_centers 64 in 128 directions); the selection around them costs
+about as much again.  Maximum-inner-product search indexes (faiss: exact flat,
+IVF, HNSW) were measured against it by ``scripts/benchmark_mips.py``: the
+separation exclusion makes them ask for K + ~450 partners per centre, and none
+was faster at the survival required (figures in README, "Measured performance").
 """
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 import healpy as hp
@@ -75,6 +90,7 @@ TRIPLE_DIM = 320          # triple products kept (lowest m + n first)
 TRIPLE_POWER = 0.5        # each triple product divided by |product| ** TRIPLE_POWER
 AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlation
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
+TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
@@ -253,28 +269,17 @@ def excluded_partners(centres, sep_cos):
 
 
 # --------------------------------------------------------------------------- selection
-def _true_positions(mask):
-    """Flat indices of the True entries of a contiguous boolean array (fast when they are sparse)."""
-    flat = mask.reshape(-1)
-    nw = flat.size // 8
-    head = flat[:nw * 8]
-    words = head.view(np.uint64)
-    w = np.flatnonzero(words)
-    r8, c8 = np.nonzero(head.reshape(nw, 8)[w])
-    pos = w[r8] * 8 + c8
-    tail = np.flatnonzero(flat[nw * 8:]) + nw * 8
-    return np.concatenate([pos, tail]) if tail.size else pos
-
-
 def _allowed_dots(d, sep_cos):
     lo, hi = sep_cos
     return (d >= lo - SEP_TOL) & (d <= hi + SEP_TOL)
 
 
-def _row_thresholds(F, centres, sep_cos, partners, use):
+def _row_thresholds(F, centres, sep_cos, partners, use, excl=None, threads=1):
     """Per row, a score that at least ``partners`` allowed partners reach: the ks-th best of a strided
     sample of columns, with ks chosen so that a row falls short with probability below about 1 %
-    (rows that do fall short are redone exactly)."""
+    (rows that do fall short are redone exactly).  The thresholds only decide which scores are carried
+    as candidates: any values give the same selection, fitting ones carry few.  Excluded partners come
+    from the separation lists ``excl`` when given (else from the centres' dot products)."""
     n = F.shape[0]
     stride = max(1, partners // 4)
     cols = np.arange(0, n, stride)
@@ -285,18 +290,46 @@ def _row_thresholds(F, centres, sep_cos, partners, use):
     if ks >= cols.size:
         thr[use] = _LOWEST               # every allowed partner is a candidate
         return thr
+    bad_cols = np.flatnonzero(~use[cols])
+    if excl is not None:                 # excluded sampled partners: (row, sample column) from the lists
+        indptr, indices = excl
+        on = indices % stride == 0
+        ex_r = np.repeat(np.arange(n, dtype=np.int64), np.diff(indptr))[on]
+        ex_c = (indices[on] // stride).astype(np.int64)
     step = 2048
-    for lo in range(0, n, step):
+
+    def one(lo):
         hi = min(n, lo + step)
         s = F[lo:hi] @ F[cols].T
-        ok = _allowed_dots(centres[lo:hi] @ centres[cols].T, sep_cos)
-        ok &= use[cols][None, :]
-        ok &= np.arange(lo, hi)[:, None] != cols[None, :]
-        s[~ok] = -np.inf
+        if excl is not None:
+            a, b = np.searchsorted(ex_r, (lo, hi))
+            s[ex_r[a:b] - lo, ex_c[a:b]] = -np.inf
+        else:
+            s[~_allowed_dots(centres[lo:hi] @ centres[cols].T, sep_cos)] = -np.inf
+        if bad_cols.size:
+            s[:, bad_cols] = -np.inf
+        own = np.arange(lo + (-lo) % stride, hi, stride)           # a centre is never its own partner
+        s[own - lo, own // stride] = -np.inf
         t = np.partition(s, cols.size - ks, axis=1)[:, cols.size - ks]
         thr[lo:hi] = np.maximum(t, _LOWEST)
+
+    _run(one, range(0, n, step), threads)
     thr[~use] = np.inf
     return thr
+
+
+def _run(fn, items, threads):
+    """``fn`` over ``items`` on up to ``threads`` threads (numpy releases the GIL in the array work)."""
+    items = list(items)
+    if threads <= 1 or len(items) <= 1:
+        for it in items:
+            fn(it)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=int(threads)) as ex:
+        for _ in ex.map(fn, items):
+            pass
 
 
 def _select(rows, cols, vals, n, partners):
@@ -346,57 +379,69 @@ def block_rows_for(n, memory_gb):
     return int(max(16, min(BLOCK_ROWS, rows)))
 
 
-def top_partners(F, centres, sep_cos, partners, use=None, memory_gb=4.0):
+def _tile_candidates(c, thr_r, thr_c):
+    """Positions (r, col) and scores of the entries of the score tile ``c`` that reach their row's
+    threshold ``thr_r`` or their column's ``thr_c``: one comparison with the lower of the row's
+    threshold and the tile's lowest column threshold, then the exact test on the few that pass."""
+    floor = np.minimum(thr_r, thr_c.min())
+    passed = np.greater_equal(c, floor[:, None])
+    pos = np.flatnonzero(passed)
+    w = c.shape[1]
+    r, cc = pos // w, pos % w
+    v = c[r, cc]
+    ok = (v >= thr_r[r]) | (v >= thr_c[cc])
+    return r[ok], cc[ok], v[ok]
+
+
+def top_partners(F, centres, sep_cos, partners, use=None, memory_gb=4.0, threads=1):
     """Surviving pairs (i, j), i < j, sorted: each usable centre keeps its ``partners`` best partners
     by screen score within the separation range; a pair survives when either end keeps it.
 
-    Each pair is scored once (upper triangle of the score matrix, in blocks of rows); an entry is a
-    candidate of row i when it reaches row i's threshold, of row j when it reaches row j's.
+    Each pair is scored once (upper triangle of the score matrix, in blocks of rows); within a block,
+    each tile of ``TILE_COLS`` columns is thresholded on its own (on up to ``threads`` threads): an entry
+    is a candidate of row i when it reaches row i's threshold, of row j when it reaches row j's.
     """
     n = F.shape[0]
     use = np.ones(n, dtype=bool) if use is None else np.asarray(use, dtype=bool)
     if n == 0 or not use.any():
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    thr = _row_thresholds(F, centres, sep_cos, partners, use)
+    threads = max(1, int(threads or 1))
     excl = excluded_partners(centres, sep_cos)
+    thr = _row_thresholds(F, centres, sep_cos, partners, use, excl, threads)
     rows_per = block_rows_for(n, memory_gb)
-    bad_cols = np.flatnonzero(~use)
-    I, J, V = [], [], []
-    buf = np.empty(rows_per * n, dtype=np.float32)
-    hit = np.empty(rows_per * n, dtype=bool)
-    hit2 = np.empty(rows_per * n, dtype=bool)
-    lower = np.tri(rows_per, dtype=bool)
-    for lo in range(0, n, rows_per):
-        hi = min(n, lo + rows_per)
-        nr, nc = hi - lo, n - lo
-        c = buf[:nr * nc].reshape(nr, nc)
-        np.matmul(F[lo:hi], F[lo:].T, out=c)        # rows lo..hi against columns lo..n
-        c[:, :nr][lower[:nr, :nr]] = -np.inf        # each pair once, never a centre with itself
-        if excl is not None:
+    width = max(1, min(TILE_COLS, n))
+    tasks = [(lo, a) for lo in range(0, n, rows_per) for a in range(lo, n, width)]
+    out = [None] * len(tasks)
+    local = threading.local()
+
+    def tile(k):
+        lo, a = tasks[k]
+        hi, b = min(n, lo + rows_per), min(n, a + width)
+        buf = getattr(local, "buf", None)
+        if buf is None:
+            buf = local.buf = np.empty(rows_per * width, dtype=np.float32)
+        c = buf[:(hi - lo) * (b - a)].reshape(hi - lo, b - a)
+        np.matmul(F[lo:hi], F[a:b].T, out=c)       # rows lo..hi against columns a..b (a >= lo)
+        if excl is not None:                        # partners outside the separation range
             indptr, indices = excl
-            cnt = np.diff(indptr[lo:hi + 1])
-            r = np.repeat(np.arange(nr), cnt)
-            cc = indices[indptr[lo]:indptr[hi]].astype(np.int64) - lo
-            keep = cc >= 0
-            c[r[keep], cc[keep]] = -np.inf
+            cols = indices[indptr[lo]:indptr[hi]]
+            inside = (cols >= a) & (cols < b)
+            r = np.repeat(np.arange(hi - lo), np.diff(indptr[lo:hi + 1]))[inside]
+            c[r, cols[inside] - a] = -np.inf
         else:
-            c[~_allowed_dots(centres[lo:hi] @ centres[lo:].T, sep_cos)] = -np.inf
-        bc = bad_cols[bad_cols >= lo] - lo
-        if bc.size:
-            c[:, bc] = -np.inf
-        c[~use[lo:hi]] = -np.inf
-        passed = hit[:nr * nc].reshape(nr, nc)
-        np.greater_equal(c, thr[lo:hi, None], out=passed)       # reaches the row's threshold
-        also = hit2[:nr * nc].reshape(nr, nc)
-        np.greater_equal(c, thr[None, lo:], out=also)          # or the column's
-        passed |= also
-        pos = _true_positions(passed)
-        r, cc = pos // nc, pos % nc
-        I.append((r + lo).astype(np.int32)); J.append((cc + lo).astype(np.int32)); V.append(c[r, cc])
-    del buf, hit, hit2
+            c[~_allowed_dots(centres[lo:hi] @ centres[a:b].T, sep_cos)] = -np.inf
+        r, cc, v = _tile_candidates(c, thr[lo:hi], thr[a:b])
+        r += lo
+        cc += a
+        keep = cc > r                               # each pair once, never a centre with itself
+        out[k] = (r[keep].astype(np.int32), cc[keep].astype(np.int32), v[keep])
+
+    _run(tile, range(len(tasks)), threads)
+    I = [o[0] for o in out]; J = [o[1] for o in out]; V = [o[2] for o in out]
+    del out
     I = np.concatenate(I).astype(np.int64); J = np.concatenate(J).astype(np.int64); V = np.concatenate(V)
-    fin = np.isfinite(V)
-    I, J, V = I[fin], J[fin], V[fin]
+    ok = np.isfinite(V) & use[I] & use[J]            # unusable rings take part in no pair
+    I, J, V = I[ok], J[ok], V[ok]
     # directed candidates: (i -> j) when v reaches row i's threshold, (j -> i) when it reaches row j's
     a = V >= thr[I]
     b = V >= thr[J]
@@ -414,11 +459,12 @@ def top_partners(F, centres, sep_cos, partners, use=None, memory_gb=4.0):
     return (key // n).astype(np.int64), (key % n).astype(np.int64)
 
 
-def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=0, memory_gb=4.0, dim=None):
+def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=0, memory_gb=4.0, dim=None,
+                 threads=1):
     """The pairs of one radius that the fast search scans exactly: (i, j), i < j, sorted by (i, j)."""
     use = usable_rings(spec, min_valid_fraction)
     F = screen_vectors(spec, use, mmax, dim)
-    return top_partners(F, centres, sep_cos, partners, use, memory_gb)
+    return top_partners(F, centres, sep_cos, partners, use, memory_gb, threads)
 
 
 # --------------------------------------------------------------------------- survival of known pairs

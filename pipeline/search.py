@@ -161,7 +161,8 @@ def _block_pairs(plan: SearchPlan, ib, ir=None):
         from . import screen
 
         i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
-                                   plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb)
+                                   plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb,
+                                   threads=plan.threads)
         if first.size != plan.centres.shape[0]:
             inb = np.zeros(plan.centres.shape[0], dtype=bool)
             inb[first] = True

@@ -33,7 +33,10 @@ import sys
 import time
 import warnings
 
-import numpy as np
+# BLAS single-threaded, as the command line sets it (pipeline/cli.py): the search's own threads use the cores
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, HERE)
@@ -163,7 +166,8 @@ def main(argv=None):
     args = ap.parse_args(argv)
     search._block_pairs = bs._cached_block_pairs
     compute = ComputeSection(threads=args.threads, memory_gb=4.0)
-    print(f"start: {load()}; {os.cpu_count()} cores; threads {args.threads}", flush=True)
+    print(f"start: {load()}; {os.cpu_count()} cores; threads {args.threads}; OMP_NUM_THREADS "
+          f"{os.environ.get('OMP_NUM_THREADS')}", flush=True)
     lengths, observer = (2.5, 2.5, 1.6), (0.3, 0.2, 0.1)
     prepared, circ = bs.make_sky("half", lengths, observer, bs._rotation(np.random.default_rng(7)), seed=12)
 

@@ -19,7 +19,10 @@ import sys
 import time
 import warnings
 
-import numpy as np
+# BLAS single-threaded, as the command line sets it (pipeline/cli.py): the search's own threads use the cores
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+import numpy as np  # noqa: E402
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.join(os.path.dirname(HERE), "tests"))
@@ -85,8 +88,11 @@ def main(argv=None):
         spec = search.ring_set(plan, 0)
         screen.excluded_partners(plan.centres, plan.sep_cos)
         t = time.perf_counter()
+        import inspect
+
+        kw = {"threads": plan.threads} if "threads" in inspect.signature(screen.screen_pairs).parameters else {}
         screen.screen_pairs(spec, plan.centres, plan.sep_cos, plan.screen_partners, plan.min_valid_fraction,
-                            plan.screen_mmax, plan.memory_gb)
+                            plan.screen_mmax, plan.memory_gb, **kw)
         print(f"screen64 seconds={time.perf_counter() - t:.2f} load={load()}", flush=True)
         clear()
     if "sim" in args.only:
