@@ -410,6 +410,8 @@ def apply_filter(alm, prep: PrepareSection, filt=None) -> list:
     """
     from .filters import filter_hash, filter_window
 
+    if prep.filter == "optimal":
+        return ["filter optimal: ring modes weighted per radius by the search (twinring.filters), a_lm unchanged"]
     f = filter_window(prep) if filt is None else filt
     if f is None:
         return []

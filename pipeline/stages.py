@@ -87,6 +87,9 @@ def search_prepared(cfg, run, prepared, runner=None):
     if warn:
         run.log(warn)
     rfilt = run_filter(cfg)
+    if rfilt is not None:
+        run.log(f"ring weighting: the optimal filter {filter_id(cfg.prepare, rfilt)} at every radius "
+                f"(search.weighting {cfg.search.weighting!r} not used)")
     plan, pool, cand, peaks = search_mod.run_search(
         prepared, cfg.search, cfg.compute, table, runner=runner, progress=run.progress, key=cfg.hash(),
         ring_filter=rfilt)
