@@ -162,15 +162,7 @@ def test_top_partners_equals_brute_force():
         F /= np.linalg.norm(F, axis=1, keepdims=True)
         use = rng.random(n) > 0.1
         sep_cos = (math.cos(math.radians(sep[1])), math.cos(math.radians(sep[0])))
-        C = F.astype(np.float64) @ F.T.astype(np.float64)
-        D = cen @ cen.T
-        ok = (D >= sep_cos[0] - 1e-12) & (D <= sep_cos[1] + 1e-12) & use[None, :] & use[:, None]
-        np.fill_diagonal(ok, False)
-        ref = set()
-        for i in np.flatnonzero(use):
-            cand = np.flatnonzero(ok[i])
-            for j in cand[np.lexsort((cand, -C[i, cand]))[:K]]:
-                ref.add((min(i, j), max(i, j)))
+        ref = _brute_top(F, cen, sep_cos, K, use)
         for mem, threads, tile in ((4.0, 1, 4096), (0.002, 1, 4096), (4.0, 2, 64), (0.002, 2, 37)):
             # blocking by memory, tiles of a block and threads must not change the answer
             monkey = pytest.MonkeyPatch()
