@@ -143,3 +143,21 @@ def test_gaussian_sky_null_spread():
     # the kernel's maxima over twist sit well above zero but below 1
     s, _ = scan_pairs(spec, i, spec, j)
     assert 0.1 < np.median(s) < 0.8
+
+
+def test_weights_given_per_mode_equal_the_named_weightings():
+    # an array of ring weights (the optimal filter's form) reproduces 'm' and 'flat' when it holds |m| or 1,
+    # with and without a mask; negative weights are refused
+    from twinring.statistic import m_weights
+
+    rng = np.random.default_rng(4)
+    t1, t2 = rng.normal(size=(2, 64))
+    u = (rng.random(64) > 0.2).astype(float)
+    for name, arr in (("m", np.arange(40, dtype=float)), ("flat", np.ones(40))):
+        for masks in ((None, None), (u, u[::-1].copy())):
+            for flip in (False, True):
+                a = s_curve(t1, t2, flip, name, *masks)
+                b = s_curve(t1, t2, flip, arr, *masks)
+                assert np.allclose(a, b, atol=1e-12)
+    with pytest.raises(ValueError):
+        m_weights(64, -np.ones(33))
