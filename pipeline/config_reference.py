@@ -38,7 +38,7 @@ HELP = {
         "input_pixwin": "divide the input map's HEALPix pixel window out of its a_lm (true for survey maps)",
         "mask_widen_fwhm": "widen the mask by this many prepare.fwhm_deg before the search; 0 = not widened",
         "filter": "none; optimal (ring modes weighted per radius by the power both views share, from CAMB's "
-                  "source split, the beam and calibrate.noise_uk_arcmin; replaces search.weighting); or multipole "
+                  "source split, the beam, the search grid and calibrate.noise_uk_arcmin; replaces search.weighting); or multipole "
                   "(one per-l filter for all radii; measured not to help, README)",
         "nside": "HEALPix Nside of the prepared map",
         "fwhm_deg": "FWHM of the Gaussian beam of the prepared map [deg]",
