@@ -156,6 +156,10 @@ def main(argv=None) -> int:
     # loky replaces a worker whose memory grew (its leak guard) and says so; the unit is rerun and the
     # results are unaffected, so the console keeps to what the run itself reports
     warnings.filterwarnings("ignore", message="A worker stopped while some jobs were given", category=UserWarning)
+    # on SIGTERM joblib cancels the units still running and warns about it; the one line twinring prints
+    # ("terminated ... finished units are kept") already says what happened
+    warnings.filterwarnings("ignore", message=r"\d+ tasks which were still being processed by the workers have been "
+                            "cancelled", category=UserWarning)
     import signal
 
     from .config import InputError
