@@ -32,14 +32,11 @@ sys.path.insert(0, HERE)
 sys.path.insert(0, os.path.join(os.path.dirname(HERE), "tests"))
 
 import benchmark_screen as bs  # noqa: E402
+from benchmark_general import load  # noqa: E402
 from twinring import screen, search  # noqa: E402
 from twinring.config import ComputeSection, SearchSection  # noqa: E402
 
 warnings.filterwarnings("ignore", category=RuntimeWarning)
-
-
-def load():
-    return "load average %.2f %.2f %.2f" % os.getloadavg()
 
 
 def _filtered(D, L, F, centres, sep_cos, partners, use):
