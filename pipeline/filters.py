@@ -281,15 +281,12 @@ def _lambda_sq(lmax, alpha_deg):
 
 
 def ring_weights(lmax, weighting):
-    """Ring weights W_m, m = 0..lmax: ``'m'``, ``'flat'`` or an array (the optimal filter's)."""
-    if isinstance(weighting, np.ndarray):
-        w = np.zeros(lmax + 1)
-        k = min(w.size, weighting.size)
-        w[:k] = weighting[:k]
-    else:
-        w = np.arange(lmax + 1, dtype=float) if weighting == "m" else np.ones(lmax + 1)
-    w[0] = 0.0
-    return w
+    """Ring weights W_m, m = 0..lmax: ``'m'``, ``'flat'`` or an array (the optimal filter's), as the
+    search applies them (twinring.statistic.m_weights for rings of 2 lmax + 2 samples, whose Nyquist
+    mode lies above lmax)."""
+    from .statistic import m_weights
+
+    return m_weights(2 * lmax + 2, weighting)[: lmax + 1]
 
 
 def expected_s(split: SourceSplit, alpha_deg, filt=None, bl=None, nl=None, weighting="m", fwhm_deg=0.0,
@@ -498,31 +495,29 @@ def weights_at(table, radius_deg, nsamp, step=TABLE_STEP_DEG) -> np.ndarray:
     return out
 
 
-def noise_spectrum(prep, noise_uk_arcmin) -> np.ndarray | None:
+def noise_spectrum(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin) -> np.ndarray | None:
     """White noise of ``noise_uk_arcmin`` on the input map, as prepare leaves it (re-beamed from the
-    input beam to ``prep.fwhm_deg``): N_l in uK^2 (l = 0..prep.lmax), or None for no noise."""
+    input beam ``input_fwhm_deg`` to ``fwhm_deg``): N_l in uK^2 (l = 0..lmax), or None for no noise."""
     import healpy as hp
 
     if not noise_uk_arcmin:
         return None
     n = (float(noise_uk_arcmin) * math.radians(1.0 / 60.0)) ** 2
-    b_out = hp.gauss_beam(math.radians(prep.fwhm_deg), lmax=prep.lmax)
-    b_in = hp.gauss_beam(math.radians(prep.input_fwhm_deg), lmax=prep.lmax)
+    b_out = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax)
+    b_in = hp.gauss_beam(math.radians(input_fwhm_deg), lmax=lmax)
     return n * (b_out / b_in) ** 2
 
 
 @functools.lru_cache(maxsize=8)
 def _ring_filter(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin, params, offset_deg):
     import healpy as hp
-    from types import SimpleNamespace
 
     from . import cosmology
 
     split = source_split(lmax, cosmology._Defaults(*params))
     bl = hp.gauss_beam(math.radians(fwhm_deg), lmax=lmax) if fwhm_deg > 0 else None
-    prep = SimpleNamespace(fwhm_deg=fwhm_deg, input_fwhm_deg=input_fwhm_deg, lmax=lmax)
-    table = ring_weight_table(split, bl, noise_spectrum(prep, noise_uk_arcmin), offset_deg=offset_deg,
-                              fwhm_deg=fwhm_deg)
+    table = ring_weight_table(split, bl, noise_spectrum(lmax, fwhm_deg, input_fwhm_deg, noise_uk_arcmin),
+                              offset_deg=offset_deg, fwhm_deg=fwhm_deg)
     table.setflags(write=False)
     return table
 
@@ -588,5 +583,6 @@ def expected_pair_s(cfg, radius_deg, physics="full", noise_uk_arcmin=0.0, ring_t
         split = matched_only(split)
     bl = hp.gauss_beam(math.radians(prep.fwhm_deg), lmax=prep.lmax)
     w = weights_at(ring_table, radius_deg, 2 * prep.lmax + 2) if ring_table is not None else cfg.search.weighting
-    return expected_s(split, radius_deg, filter_window(prep), bl, noise_spectrum(prep, noise_uk_arcmin), w,
+    nl = noise_spectrum(prep.lmax, prep.fwhm_deg, prep.input_fwhm_deg, noise_uk_arcmin)
+    return expected_s(split, radius_deg, filter_window(prep), bl, nl, w,
                       fwhm_deg=prep.fwhm_deg, offset_deg=grid_offset_deg(cfg.search))[0]
