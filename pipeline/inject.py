@@ -433,22 +433,15 @@ def injections_table(results) -> Table:
     return t
 
 
-def add_expected_s(rec: Table, inj: Table, cfg, ctx) -> None:
-    """Columns ``s_mean`` (measured mean S of the injections of each size) and ``s_expected`` (the model's
-    expected S of a true pair at that radius: twinring.filters.expected_pair_s) of a recovery table."""
+def add_expected_s(rec: Table, cfg, ctx) -> None:
+    """Column ``s_expected`` of a recovery table: the model's expected S of a true pair at each radius
+    (twinring.filters.expected_pair_s), beside the measured ``s_mean``."""
     from .filters import expected_pair_s
 
     noise = instrument(cfg)[0]
-    means, model = [], []
-    for row in rec:
-        s = np.asarray(inj["s"], float)[np.isclose(np.asarray(inj["size_chi"], float), row["size_chi"])]
-        s = s[np.isfinite(s)]
-        means.append(float(s.mean()) if s.size else np.nan)
-        model.append(expected_pair_s(cfg, float(row["radius_deg"]), ctx.recipe.physics, noise, ctx.ring_filter))
-    rec["s_mean"] = np.array(means, float)
-    rec["s_expected"] = np.array(model, float)
-    for c in ("s_mean", "s_expected"):
-        rec[c].info.format = ".4f"
+    rec["s_expected"] = np.array([expected_pair_s(cfg, float(r), ctx.recipe.physics, noise, ctx.ring_filter)
+                                  for r in rec["radius_deg"]], float)
+    rec["s_expected"].info.format = ".4f"
 
 
 def binomial_interval(k, n, confidence=CONFIDENCE):
@@ -471,13 +464,15 @@ def recovery_table(inj: Table, confidence=CONFIDENCE) -> Table:
         s = s[np.isfinite(s)]
         rows.append((float(sel["size_chi"][0]), float(np.nanmedian(sel["radius_deg"])), n, k, k / n if n else np.nan,
                      lo, hi, low1, bool(np.all(sel["in_range"])), float(np.median(s)) if s.size else np.nan,
-                     float(np.nanmedian(sel["s_threshold"])) if np.any(np.isfinite(sel["s_threshold"])) else np.nan))
+                     float(np.nanmedian(sel["s_threshold"])) if np.any(np.isfinite(sel["s_threshold"])) else np.nan,
+                     float(np.mean(s)) if s.size else np.nan))
     names = ["size_chi", "radius_deg", "n", "detected", "fraction", "ci_low", "ci_high", "lower_95", "in_range",
-             "s_median", "s_threshold"]
-    dtypes = [float, float, int, int, float, float, float, float, bool, float, float]
+             "s_median", "s_threshold", "s_mean"]
+    dtypes = [float, float, int, int, float, float, float, float, bool, float, float, float]
     t = Table(rows=rows, names=names, dtype=dtypes) if rows else Table(names=names, dtype=dtypes)
     t.sort("radius_deg")
-    for c in ("size_chi", "radius_deg", "fraction", "ci_low", "ci_high", "lower_95", "s_median", "s_threshold"):
+    for c in ("size_chi", "radius_deg", "fraction", "ci_low", "ci_high", "lower_95", "s_median", "s_threshold",
+              "s_mean"):
         t[c].info.format = ".4f"
     t["radius_deg"].unit = "deg"
     return t
@@ -619,7 +614,7 @@ def inject_run(cfg, run, sky=None):
     dt = time.time() - t0
     inj = injections_table([res[u] for u in units])
     rec = recovery_table(inj)
-    add_expected_s(rec, inj, cfg, ctx)
+    add_expected_s(rec, cfg, ctx)
     meta = provenance(cfg, input_files(cfg), "inject")
     meta.update(space=shape.name, shape_lengths=list(shape.lengths), distance_per_size=d1, mode=ctx.mode,
                 false_alarm=rate, threshold=cfg.inject.threshold, calibration_n_sims=model.n_sims,
