@@ -787,11 +787,9 @@ def make_report(run_dir, cfg=None, log=None):
         old.unlink()
     if prepared is not None and cand is not None and len(cand):
         weighting = cfg.search.weighting if cfg is not None else str(cand.meta.get("weighting", "m"))
-        table = None
-        if cfg is not None and cfg.prepare.filter == "optimal":
-            from .filters import run_filter
+        from .filters import run_filter, weights_at
 
-            table = run_filter(cfg)
+        table = run_filter(cfg) if cfg is not None else None     # the optimal filter's ring weights, or None
         rows, status = shown_candidates(cand, n_circles)
         n, floor = calibration_n(cand, thr), p_floor(cand, thr)
         for i in rows:
@@ -800,7 +798,6 @@ def make_report(run_dir, cfg=None, log=None):
             w = weighting
             if table is not None:       # the optimal filter's weights at this candidate's radius
                 from . import rings
-                from .filters import weights_at
 
                 w = weights_at(table, float(row["radius_deg"]),
                                rings.samples_for(math.radians(float(row["radius_deg"])), prepared.lmax))
