@@ -16,6 +16,7 @@ Filters: ``optimal`` (prepare.filter: optimal), ``none`` (|m| ring weighting, th
 ``flat`` (no filter, flat ring weighting), ``multipole`` (prepare.filter: multipole, |m|).
 
     python scripts/benchmark_filters.py [realizations] [simulations] [filter,filter,...]
+    python scripts/benchmark_filters.py 29 100 optimal,none --radii 70,71,72,73,74,75,76
     python scripts/benchmark_filters.py --from /tmp/twinring-filters-XXXX   # re-read a finished run
 
 Prints per filter and radius the recovered count, its one-sided 95 % lower limit, the mean S of the
@@ -56,7 +57,7 @@ FILTERS = {
 }
 
 
-def config(name, out, realizations, sims):
+def config(name, out, realizations, sims, radii=RADII):
     f = FILTERS[name]
     return {
         # the data sky: a torus too large to show circles (L > 2 chi); injections take the shape, not the size
@@ -68,7 +69,7 @@ def config(name, out, realizations, sims):
                    **f["search"]},
         "calibrate": {"simulations": sims, "spectrum": "theory", "noise_uk_arcmin": 40.0,
                       "false_alarm": [0.05], "significance": 0.05, "seed": 7},
-        "inject": {"radii_deg": RADII, "realizations": realizations, "mode": "targeted", "seed": 11,
+        "inject": {"radii_deg": list(radii), "realizations": realizations, "mode": "targeted", "seed": 11,
                    "physics": "full"},
         "bound": {"recovery": RECOVERY},
         "compute": {"backend": "processes", "workers": 2, "memory_gb": 4},
@@ -143,7 +144,7 @@ def report_paired(dirs, base="optimal"):
                   f"{m_s - m_n:+.3f}+-{math.hypot(e_s, e_n):.3f}")
 
 
-def main(realizations=29, sims=40, names=tuple(FILTERS)):
+def main(realizations=29, sims=40, names=tuple(FILTERS), radii=RADII):
     t0 = time.time()
     load = open("/proc/loadavg").read().split()[0]
     work = Path(tempfile.mkdtemp(prefix="twinring-filters-"))
@@ -151,7 +152,7 @@ def main(realizations=29, sims=40, names=tuple(FILTERS)):
     for name in names:
         out = work / name
         cfg_path = work / f"{name}.yaml"
-        cfg_path.write_text(yaml.safe_dump(config(name, out, realizations, sims)))
+        cfg_path.write_text(yaml.safe_dump(config(name, out, realizations, sims, radii)))
         t = time.time()
         p = subprocess.run([sys.executable, "-c", "import sys; from twinring.cli import main; sys.exit(main())",
                             "run", str(cfg_path), "--out", str(out)],
@@ -194,10 +195,27 @@ def reread(work):
 
 
 if __name__ == "__main__":
-    if len(sys.argv) == 3 and sys.argv[1] == "--from":
-        reread(sys.argv[2])
+    import argparse
+
+    ap = argparse.ArgumentParser(description="alpha_min of full-physics cubic tori per filter")
+    ap.add_argument("realizations", nargs="?", type=int, default=29, help="injected skies per radius")
+    ap.add_argument("simulations", nargs="?", type=int, default=40, help="calibration simulations")
+    ap.add_argument("filters", nargs="?", default=",".join(FILTERS), help="comma-separated: " + ", ".join(FILTERS))
+    ap.add_argument("--radii", default=",".join(f"{r:g}" for r in RADII),
+                    help="injection radii in degrees, comma-separated (within the searched 56-79 deg)")
+    ap.add_argument("--from", dest="reread", metavar="DIR", help="re-read a finished run directory instead")
+    args = ap.parse_args()
+    if args.reread:
+        reread(args.reread)
         sys.exit(0)
-    a = [int(x) for x in sys.argv[1:3]]
-    if len(sys.argv) > 3:
-        a.append(tuple(sys.argv[3].split(",")))
-    main(*a)
+    names = tuple(args.filters.split(","))
+    bad = [n for n in names if n not in FILTERS]
+    if bad:
+        ap.error(f"unknown filter {bad[0]}; allowed: {', '.join(FILTERS)}")
+    try:
+        radii = [float(x) for x in args.radii.split(",")]
+    except ValueError:
+        ap.error(f"--radii: found {args.radii!r}; allowed: comma-separated degrees")
+    if not all(56.0 <= r <= 79.0 for r in radii):
+        ap.error(f"--radii: found {args.radii}; allowed: degrees within the searched 56-79")
+    main(args.realizations, args.simulations, names, radii)
