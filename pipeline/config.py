@@ -104,6 +104,7 @@ class SearchSection:
     keep_per_radius: int = _f(200, "int", min=1, max=1000000)
     screen_partners: int = _f(64, "int", min=1, max=100000)
     screen_mmax: int = _f(0, "int", min=0)
+    screen_levels: int | None = _f(None, "int?", min=0, max=4)
 
     def check(self, where):
         lo, hi, step = self.radius_deg
@@ -116,6 +117,9 @@ class SearchSection:
             raise where("separation_deg", list(self.separation_deg), "0 < min <= max <= 180 degrees")
         if self.family == "listed" and not self.listed:
             raise where("listed", None, "a table path when family is 'listed'")
+        if self.screen_levels and (self.nside_centers >> self.screen_levels) < 1:
+            raise where("screen_levels", self.screen_levels, f"at most log2(nside_centers) = "
+                        f"{self.nside_centers.bit_length() - 1} (the coarse grid needs Nside >= 1)")
 
     def radii_deg(self):
         lo, hi, step = self.radius_deg

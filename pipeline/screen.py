@@ -92,6 +92,7 @@ AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlati
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
 TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
+HIERARCHY_MIN_NSIDE = 64  # search.screen_levels null: one coarse level from this nside_centers on
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
 
@@ -467,6 +468,169 @@ def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=
     return top_partners(F, centres, sep_cos, partners, use, memory_gb, threads)
 
 
+# --------------------------------------------------------------------------- coarse to fine
+# With ``search.screen_levels`` L > 0 the all-pairs products run on the HEALPix grid L levels coarser
+# (nside_centers / 2^L, 4^L times fewer centres, 16^L times fewer pairs): rings of the same radius about
+# the coarse centres give coarse screen vectors (the same features), each coarse centre keeps its
+# ``partners`` best coarse partners (either end, as above) within the separation range widened by twice
+# the largest distance of a fine centre from its parent, so that no allowed fine pair is lost to the
+# range test.  A fine centre's candidates are then the children (NESTED hierarchy; the plan's centres are
+# in RING order and are mapped through it) of its parent's kept coarse partners and of the parent itself;
+# each fine centre keeps its ``partners`` best candidates by fine screen score within the exact
+# separation range (inclusive test, SEP_TOL), usable rings only, and a pair survives when either end
+# keeps it: the survivors are a subset of the exhaustive pair set.  The products are only those of the
+# candidates: about 4^L x (2 K) per fine centre instead of all n.
+
+
+def coarse_grid(nside, levels):
+    """The centres ``levels`` HEALPix levels coarser than the RING grid of ``nside`` and the hierarchy:
+    (coarse centres (nc, 3) in RING order, parent (n,) coarse index of every fine centre, children
+    (nc, 4^levels) fine indices of every coarse centre, largest fine-to-parent angle in radians)."""
+    from . import rings
+
+    levels = int(levels)
+    nc_side = nside >> levels
+    if nc_side < 1 or nc_side << levels != nside:
+        raise ValueError(f"nside {nside} has no grid {levels} levels coarser")
+    n = hp.nside2npix(nside)
+    nest = hp.ring2nest(nside, np.arange(n))
+    parent = hp.nest2ring(nc_side, nest >> (2 * levels)).astype(np.int64)
+    children = np.argsort(parent, kind="stable").reshape(-1, 4 ** levels).astype(np.int64)
+    coarse = rings.center_grid(nc_side)
+    fine = rings.center_grid(nside)
+    offset = float(np.arccos(np.clip(np.min(np.sum(fine * coarse[parent], axis=1)), -1.0, 1.0)))
+    return coarse, parent, children, offset
+
+
+def widened_sep_cos(sep_cos, pad_rad):
+    """The separation range (cos max, cos min) widened by ``pad_rad`` at both ends."""
+    lo, hi = sep_cos
+    far = min(math.pi, math.acos(min(1.0, max(-1.0, lo))) + pad_rad)
+    near = max(0.0, math.acos(min(1.0, max(-1.0, hi))) - pad_rad)
+    return math.cos(far), math.cos(near)
+
+
+def coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c, memory_gb=4.0, threads=1):
+    """Per coarse centre, its kept coarse partners and itself: CSR (indptr, indices) over coarse centres."""
+    nc = Fc.shape[0]
+    ci, cj = top_partners(Fc, coarse, widened_sep_cos(sep_cos, 2 * offset), partners, use_c, memory_gb, threads)
+    own = np.arange(nc, dtype=np.int64)
+    r = np.concatenate([ci, cj, own])
+    c = np.concatenate([cj, ci, own])
+    order = np.lexsort((c, r))
+    r, c = r[order], c[order]
+    indptr = np.searchsorted(r, np.arange(nc + 1))
+    return indptr, c
+
+
+def coarse_use(use, children, spec_c):
+    """Coarse centres that take part: a child is usable and the coarse ring has signal."""
+    return use[children].any(axis=1) & (spec_c.norm > 0)
+
+
+def _fine_batch(F, centres, sep_cos, partners, use, children, lists, groups):
+    """Candidates kept by the fine centres under the coarse centres ``groups`` (of similar numbers of
+    kept coarse partners): the scores of each group's children against the children of the group's kept
+    coarse partners, padded to the batch's longest list, one batched product; each usable row keeps its
+    ``partners`` best allowed candidates.  Returns (rows, cols)."""
+    indptr, indices = lists
+    deg = indptr[groups + 1] - indptr[groups]
+    width = int(deg.max())
+    q = children.shape[1]
+    slot = np.arange(width)[None, :] < deg[:, None]                      # (g, width)
+    part = np.where(slot, indices[np.minimum(indptr[groups][:, None] + np.arange(width)[None, :],
+                                             indices.size - 1)], 0)
+    cols = children[part].reshape(groups.size, width * q)                # (g, width * q)
+    valid = np.repeat(slot, q, axis=1) & use[cols]
+    rows = children[groups]                                              # (g, q)
+    s = np.matmul(F[rows], F[cols].transpose(0, 2, 1))                   # (g, q, width * q)
+    d = np.matmul(centres[rows], centres[cols].transpose(0, 2, 1))
+    ok = _allowed_dots(d, sep_cos) & valid[:, None, :] & (rows[:, :, None] != cols[:, None, :])
+    ok &= use[rows][:, :, None]
+    s[~ok] = -np.inf
+    s = s.reshape(groups.size * q, -1)
+    cols_r = np.repeat(cols, q, axis=0)                                  # (g * q, width * q)
+    if s.shape[1] > partners:
+        top = np.argpartition(-s, partners - 1, axis=1)[:, :partners]
+    else:
+        top = np.broadcast_to(np.arange(s.shape[1]), s.shape)
+    keep = np.isfinite(np.take_along_axis(s, top, axis=1))
+    r = np.broadcast_to(rows.reshape(-1, 1), top.shape)[keep]
+    c = np.take_along_axis(cols_r, top, axis=1)[keep]
+    return r, c
+
+
+def hierarchical_pairs(F, centres, use, Fc, coarse, use_c, children, offset, sep_cos, partners,
+                       memory_gb=4.0, threads=1):
+    """Surviving pairs (i, j), i < j, sorted, of the coarse-to-fine screen (see the notes above)."""
+    n = F.shape[0]
+    if n == 0 or not use.any():
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c, memory_gb, threads)
+    indptr = lists[0]
+    q = children.shape[1]
+    live = np.flatnonzero(use[children].any(axis=1))
+    live = live[np.argsort(np.diff(indptr)[live], kind="stable")]      # batches of similar list lengths
+    width = max(1, int(np.diff(indptr).max()) * q)
+    # per batch: scores, dots and masks of (g q) x width entries, about 16 bytes each, in a 1/16 of memory_gb
+    step = int(max(8, min(512, memory_gb * 1e9 / 16 / 16 / (q * width * F.shape[1] / 32 + q * width))))
+    batches = [live[lo:lo + step] for lo in range(0, live.size, step)]
+    out = [None] * len(batches)
+
+    def batch(k):
+        out[k] = _fine_batch(F, centres, sep_cos, partners, use, children, lists, batches[k])
+
+    _run(batch, range(len(batches)), max(1, int(threads or 1)))
+    if not out:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    r = np.concatenate([o[0] for o in out]).astype(np.int64)
+    c = np.concatenate([o[1] for o in out]).astype(np.int64)
+    key = np.minimum(r, c) * n + np.maximum(r, c)
+    key.sort()
+    if key.size:
+        key = key[np.concatenate([[True], key[1:] != key[:-1]])]
+    return (key // n).astype(np.int64), (key % n).astype(np.int64)
+
+
+def hierarchical_rank(F, centres, use, Fc, coarse, use_c, children, parent, offset, sep_cos, partners, i, j):
+    """Rank of the pair (i, j) in the coarse-to-fine screen keeping ``partners`` at both levels: the
+    better end's rank among its candidates (it survives when this is < partners), or None when j is not
+    a candidate of i (the coarse stage dropped the pair)."""
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c)
+    return _hier_rank(F, centres, use, children, parent, lists, sep_cos, i, j)
+
+
+def _hier_rank(F, centres, use, children, parent, lists, sep_cos, i, j):
+    indptr, indices = lists
+    best = None
+    for a, b in ((i, j), (j, i)):
+        p = parent[a]
+        cols = children[indices[indptr[p]:indptr[p + 1]]].ravel()
+        if not np.any(cols == b):
+            continue
+        cols = np.sort(cols)
+        ok = _allowed_dots(centres[cols] @ centres[a], sep_cos) & use[cols] & (cols != a)
+        s = np.where(ok, F[cols] @ F[a], -np.inf)
+        v = float(F[b] @ F[a])
+        rank = int(np.sum(s > v) + np.sum((s == v) & (cols < b)))
+        best = rank if best is None else min(best, rank)
+    return best
+
+
+def screen_pairs_hierarchical(spec, spec_c, centres, sep_cos, partners, levels, min_valid_fraction=0.5, mmax=0,
+                              memory_gb=4.0, dim=None, threads=1):
+    """The pairs of one radius that the fast search scans exactly, by the coarse-to-fine screen with the
+    coarse rings ``spec_c`` (same radius, the grid ``levels`` coarser): (i, j), i < j, sorted."""
+    nside = hp.npix2nside(centres.shape[0])
+    coarse, parent, children, offset = coarse_grid(nside, levels)
+    use = usable_rings(spec, min_valid_fraction)
+    F = screen_vectors(spec, use, mmax, dim)
+    use_c = coarse_use(use, children, spec_c)
+    Fc = screen_vectors(spec_c, use_c, mmax, dim)
+    return hierarchical_pairs(F, centres, use, Fc, coarse, use_c, children, offset, sep_cos, partners,
+                              memory_gb, threads)
+
+
 # --------------------------------------------------------------------------- survival of known pairs
 def partner_rank(F, centres, sep_cos, i, j, use=None):
     """Rank of j among the partners of i by screen score (0 = best), within the separation range."""
@@ -562,11 +726,16 @@ def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None):
     return out
 
 
-def describe(nside_centers, partners):
+def default_levels(nside_centers):
+    """Coarse levels of the screen when ``search.screen_levels`` is null (see ``HIERARCHY_MIN_NSIDE``)."""
+    return 1 if int(nside_centers) >= HIERARCHY_MIN_NSIDE else 0
+
+
+def describe(nside_centers, partners, levels=0):
     """What the screen is, with the survival measured on the reference campaign (for summaries)."""
     ref = REFERENCE_CAMPAIGN.get("ranks", {})
     out = dict(statistic="correlation of |m|-weighted amplitude and bispectrum features (twist and sense invariant)",
-               partners=int(partners), triple_dim=TRIPLE_DIM, amplitude_share=AMPLITUDE_SHARE,
+               partners=int(partners), levels=int(levels), triple_dim=TRIPLE_DIM, amplitude_share=AMPLITUDE_SHARE,
                band_fraction=BAND_FRACTION, screen_survival=None, screen_survival_basis=None)
     if ref:
         near = min(ref, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))

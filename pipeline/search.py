@@ -53,6 +53,7 @@ class SearchPlan:
     screen_partners: int = 64        # fast: best partners kept per centre and radius
     screen_mmax: int = 0             # fast: highest m of the screen (0 = from the ring power)
     memory_gb: float = 4.0           # fast: memory for the screen's blocked products
+    screen_levels: int = 0           # fast: levels of the coarse grid of a coarse-to-fine screen (0: one level)
     screen: dict = field(default_factory=dict)   # fast: what the screen is and its reference survival
     ring_filter: np.ndarray | None = None   # prepare.filter optimal: ring weights per radius (twinring.filters)
 
@@ -141,9 +142,20 @@ def _screen_fields(scfg, compute):
         return {}
     from . import screen
 
+    levels = screen_levels_for(scfg)
     return dict(method="fast", screen_partners=scfg.screen_partners, screen_mmax=scfg.screen_mmax,
-                memory_gb=(compute.memory_gb if compute is not None else 4.0),
-                screen=screen.describe(scfg.nside_centers, scfg.screen_partners))
+                memory_gb=(compute.memory_gb if compute is not None else 4.0), screen_levels=levels,
+                screen=screen.describe(scfg.nside_centers, scfg.screen_partners, levels))
+
+
+def screen_levels_for(scfg):
+    """Coarse levels of the fast screen: ``search.screen_levels``, or when null the default for the grid
+    (twinring.screen.default_levels)."""
+    from . import screen
+
+    if scfg.screen_levels is not None:
+        return int(scfg.screen_levels)
+    return screen.default_levels(scfg.nside_centers)
 
 
 def count_pairs(plan: SearchPlan) -> int:
@@ -160,9 +172,14 @@ def _block_pairs(plan: SearchPlan, ib, ir=None):
     if plan.method == "fast" and ir is not None:
         from . import screen
 
-        i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
-                                   plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb,
-                                   threads=plan.threads)
+        if plan.screen_levels > 0:
+            i, j = screen.screen_pairs_hierarchical(
+                ring_set(plan, ir), coarse_ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
+                plan.screen_levels, plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb, threads=plan.threads)
+        else:
+            i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
+                                       plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb,
+                                       threads=plan.threads)
         if first.size != plan.centres.shape[0]:
             inb = np.zeros(plan.centres.shape[0], dtype=bool)
             inb[first] = True
@@ -197,6 +214,25 @@ def ring_set(plan: SearchPlan, ir):
     spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
     _RING_CACHE.clear()   # one radius at a time per process bounds memory
     _RING_CACHE[ir] = (plan, spec)
+    return spec
+
+
+_COARSE_CACHE: dict = {}
+
+
+def coarse_ring_set(plan: SearchPlan, ir):
+    """Spectra of the rings at radius index ``ir`` about the centres of the grid ``plan.screen_levels``
+    HEALPix levels coarser than the plan's (the coarse stage of the screen; cached per process)."""
+    hit = _COARSE_CACHE.get(ir)
+    if hit is not None and hit[0] is plan:
+        return hit[1]
+    nside = hp.npix2nside(plan.centres.shape[0]) >> plan.screen_levels
+    alpha = math.radians(plan.radii_deg[ir])
+    vals, wts = rings.sample_rings(plan.alm, plan.lmax, rings.center_grid(nside), alpha, plan.nsamp[ir], None,
+                                   plan.mask, nthreads=plan.threads)
+    spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
+    _COARSE_CACHE.clear()
+    _COARSE_CACHE[ir] = (plan, spec)
     return spec
 
 
