@@ -611,7 +611,7 @@ def _hier_rank(F, centres, use, children, parent, lists, sep_cos, i, j):
         cols = np.sort(cols)
         ok = _allowed_dots(centres[cols] @ centres[a], sep_cos) & use[cols] & (cols != a)
         s = np.where(ok, F[cols] @ F[a], -np.inf)
-        v = float(F[b] @ F[a])
+        v = s[np.searchsorted(cols, b)]           # the same product as the others (no rounding apart)
         rank = int(np.sum(s > v) + np.sum((s == v) & (cols < b)))
         best = rank if best is None else min(best, rank)
     return best
@@ -658,7 +658,7 @@ def survival_rate(ranks, partners):
     return float(np.mean(r < partners)) if r.size else float("nan")
 
 
-def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None):
+def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None, hier_partners=()):
     """Screen ranks of known circle pairs (injected or predicted) on a search plan.
 
     ``pairs``: iterable of (c1, c2, radius_deg) with unit-vector centres.  For each pair, the exact
@@ -669,9 +669,12 @@ def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None):
     left out.  Returns one dict per detected pair: radius_deg (true), ir, i, j, s, sense, rank
     (the better of the two ends; the pair survives a screen keeping K partners when rank < K) and
     the rank of every grid radius where that radius' best grid pair also exceeds ``s_min``
-    (``ranks_by_radius``: {ir: rank}).
+    (``ranks_by_radius``: {ir: rank}).  With ``plan.screen_levels`` > 0, ``hier_rank`` gives for every
+    K in ``hier_partners`` (default: the plan's ``screen_partners``) the pair's rank in the coarse-to-fine
+    screen keeping K partners at both levels (:func:`hierarchical_rank`; None when the coarse stage drops
+    it), at the best pair's radius: the pair survives that screen when it is not None and < K.
     """
-    from .search import ring_set
+    from .search import coarse_ring_set, ring_set
     from .statistic import scan_pairs
 
     radii = np.asarray(plan.radii_deg)
@@ -719,6 +722,23 @@ def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None):
             at_radius[q][ir] = rank
             if best[q] is None or sb > best[q]["s"]:
                 best[q] = dict(radius_deg=alpha, ir=ir, i=int(ii[b]), j=int(jj[b]), s=sb, sense=sense, rank=rank)
+    levels = int(getattr(plan, "screen_levels", 0) or 0)
+    if levels > 0:
+        ks = tuple(hier_partners) or (plan.screen_partners,)
+        coarse, parent, children, offset = coarse_grid(nside, levels)
+        for ir in sorted({b["ir"] for b in best if b is not None}):
+            spec = ring_set(plan, ir)
+            use = usable_rings(spec, plan.min_valid_fraction)
+            F = screen_vectors(spec, use, plan.screen_mmax, dim)
+            spec_c = coarse_ring_set(plan, ir)
+            use_c = coarse_use(use, children, spec_c)
+            Fc = screen_vectors(spec_c, use_c, plan.screen_mmax, dim)
+            for k in ks:
+                lists = coarse_partner_lists(Fc, coarse, plan.sep_cos, offset, k, use_c)
+                for b in best:
+                    if b is not None and b["ir"] == ir:
+                        b.setdefault("hier_rank", {})[k] = _hier_rank(F, plan.centres, use, children, parent, lists,
+                                                                      plan.sep_cos, b["i"], b["j"])
     for q, b in enumerate(best):
         if b is not None:
             b["ranks_by_radius"] = at_radius[q]
