@@ -92,6 +92,7 @@ AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlati
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
 TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
+COVER_FACTOR = 1.5        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
 HIERARCHY_MIN_NSIDE = 64  # search.screen_levels null: one coarse level from this nside_centers on
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
@@ -471,21 +472,31 @@ def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=
 # --------------------------------------------------------------------------- coarse to fine
 # With ``search.screen_levels`` L > 0 the all-pairs products run on the HEALPix grid L levels coarser
 # (nside_centers / 2^L, 4^L times fewer centres, 16^L times fewer pairs): rings of the same radius about
-# the coarse centres give coarse screen vectors (the same features), each coarse centre keeps its
+# the coarse centres give coarse screen vectors (the same features), and each coarse centre keeps its
 # ``partners`` best coarse partners (either end, as above) within the separation range widened by twice
-# the largest distance of a fine centre from its parent, so that no allowed fine pair is lost to the
-# range test.  A fine centre's candidates are then the children (NESTED hierarchy; the plan's centres are
-# in RING order and are mapped through it) of its parent's kept coarse partners and of the parent itself;
-# each fine centre keeps its ``partners`` best candidates by fine screen score within the exact
-# separation range (inclusive test, SEP_TOL), usable rings only, and a pair survives when either end
-# keeps it: the survivors are a subset of the exhaustive pair set.  The products are only those of the
-# candidates: about 4^L x (2 K) per fine centre instead of all n.
+# the cover radius (below), so that no allowed fine pair is lost to the range test.
+# A coarse centre covers the fine centres within ``COVER_FACTOR`` times the largest angle of a fine
+# centre from its parent (the coarse pixel holding it in the NESTED hierarchy; the plan's centres are in
+# RING order and are mapped through it): its 4^L children and the nearer children of its neighbours (at
+# one level, 6.0 fine centres per coarse centre on average at nside_centers 16, 6.9 at 64).  Children
+# alone (factor 1) are not enough on coarse grids: the coarse centre nearest a circle's true centre is
+# often a neighbour of the parent of the fine centre nearest it, and the parent pair can rank far down
+# (measured on the torus of the tests at nside_centers 16, coarse Nside 8: the parent pair of the best
+# grid pair ranked 74 of 768, the neighbouring coarse pair 0; with factor 1.5 the fast search keeps the
+# exhaustive top rows).  The wider candidate sets also let each fine centre choose better: at
+# nside_centers 64, 1.63 M instead of 2.01 M survivors at K = 64 (one radius, 50 deg).
+# A fine centre's candidates are the fine centres covered by the kept partners of every coarse centre
+# covering it (and by those coarse centres themselves); each usable fine centre keeps its ``partners``
+# best candidates by fine screen score within the exact separation range (inclusive test, SEP_TOL) among
+# usable rings, and a pair survives when either end keeps it: the survivors are a subset of the
+# exhaustive pair set.  The fine products are only those of the candidates.
 
 
 def coarse_grid(nside, levels):
-    """The centres ``levels`` HEALPix levels coarser than the RING grid of ``nside`` and the hierarchy:
-    (coarse centres (nc, 3) in RING order, parent (n,) coarse index of every fine centre, children
-    (nc, 4^levels) fine indices of every coarse centre, largest fine-to-parent angle in radians)."""
+    """The centres ``levels`` HEALPix levels coarser than the RING grid of ``nside`` and the cover:
+    (coarse centres (nc, 3) in RING order, parent (n,) coarse index of every fine centre, cover
+    (nc, q) fine indices covered by every coarse centre, padded with n, cover radius in radians: the
+    largest angle of a fine centre from its parent)."""
     from . import rings
 
     levels = int(levels)
@@ -498,8 +509,19 @@ def coarse_grid(nside, levels):
     children = np.argsort(parent, kind="stable").reshape(-1, 4 ** levels).astype(np.int64)
     coarse = rings.center_grid(nc_side)
     fine = rings.center_grid(nside)
-    offset = float(np.arccos(np.clip(np.min(np.sum(fine * coarse[parent], axis=1)), -1.0, 1.0)))
-    return coarse, parent, children, offset
+    radius = COVER_FACTOR * float(np.arccos(np.clip(np.min(np.sum(fine * coarse[parent], axis=1)), -1.0, 1.0)))
+    cos_r = math.cos(radius)
+    nc = coarse.shape[0]
+    near = np.concatenate([np.arange(nc)[None, :], hp.get_all_neighbours(nc_side, np.arange(nc))]).T   # (nc, 9)
+    cand = np.where((near >= 0)[:, :, None], children[np.maximum(near, 0)], -1).reshape(nc, -1)
+    d = np.einsum("akx,ax->ak", fine[np.maximum(cand, 0)], coarse)
+    inside = (cand >= 0) & (d >= cos_r - 1e-12)
+    inside[:, :children.shape[1]] = True                       # the children themselves, whatever rounding says
+    q = int(inside.sum(axis=1).max())
+    order = np.argsort(~inside, axis=1, kind="stable")[:, :q]
+    cover = np.where(np.take_along_axis(inside, order, axis=1), np.take_along_axis(cand, order, axis=1), n)
+    cover = np.sort(cover, axis=1)
+    return coarse, parent, cover.astype(np.int64), radius
 
 
 def widened_sep_cos(sep_cos, pad_rad):
@@ -510,10 +532,10 @@ def widened_sep_cos(sep_cos, pad_rad):
     return math.cos(far), math.cos(near)
 
 
-def coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c, memory_gb=4.0, threads=1):
+def coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c, memory_gb=4.0, threads=1):
     """Per coarse centre, its kept coarse partners and itself: CSR (indptr, indices) over coarse centres."""
     nc = Fc.shape[0]
-    ci, cj = top_partners(Fc, coarse, widened_sep_cos(sep_cos, 2 * offset), partners, use_c, memory_gb, threads)
+    ci, cj = top_partners(Fc, coarse, widened_sep_cos(sep_cos, 2 * radius), partners, use_c, memory_gb, threads)
     own = np.arange(nc, dtype=np.int64)
     r = np.concatenate([ci, cj, own])
     c = np.concatenate([cj, ci, own])
@@ -523,30 +545,40 @@ def coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c, memory_gb
     return indptr, c
 
 
-def coarse_use(use, children, spec_c):
-    """Coarse centres that take part: a child is usable and the coarse ring has signal."""
-    return use[children].any(axis=1) & (spec_c.norm > 0)
+def _padded(use, F=None, centres=None):
+    """``use`` (and ``F``, ``centres``) with one more entry, index n: the cover's padding, never used."""
+    out = [np.concatenate([np.asarray(use, bool), [False]])]
+    if F is not None:
+        out.append(np.concatenate([F, np.zeros((1, F.shape[1]), F.dtype)]))
+        out.append(np.concatenate([centres, np.zeros((1, 3))]))
+    return out
 
 
-def _fine_batch(F, centres, sep_cos, partners, use, children, lists, groups):
-    """Candidates kept by the fine centres under the coarse centres ``groups`` (of similar numbers of
-    kept coarse partners): the scores of each group's children against the children of the group's kept
-    coarse partners, padded to the batch's longest list, one batched product; each usable row keeps its
-    ``partners`` best allowed candidates.  Returns (rows, cols)."""
+def coarse_use(use, cover, spec_c):
+    """Coarse centres that take part: a covered fine ring is usable and the coarse ring has signal."""
+    return _padded(use)[0][cover].any(axis=1) & (spec_c.norm > 0)
+
+
+def _fine_batch(F, centres, sep_cos, partners, use, cover, lists, groups):
+    """Candidates kept by the fine centres covered by the coarse centres ``groups`` (of similar numbers
+    of kept coarse partners): their scores against the centres covered by the group's kept coarse
+    partners, padded to the batch's longest list, one batched product; each usable row keeps its
+    ``partners`` best allowed candidates.  ``F``, ``centres``, ``use`` carry the padding entry.
+    Returns (rows, cols, scores)."""
     indptr, indices = lists
     deg = indptr[groups + 1] - indptr[groups]
     width = int(deg.max())
-    q = children.shape[1]
+    q = cover.shape[1]
     slot = np.arange(width)[None, :] < deg[:, None]                      # (g, width)
     part = np.where(slot, indices[np.minimum(indptr[groups][:, None] + np.arange(width)[None, :],
                                              indices.size - 1)], 0)
-    cols = children[part].reshape(groups.size, width * q)                # (g, width * q)
-    valid = np.repeat(slot, q, axis=1) & use[cols]
-    rows = children[groups]                                              # (g, q)
+    pad = use.size - 1
+    cols = np.where(np.repeat(slot, q, axis=1), cover[part].reshape(groups.size, width * q), pad)
+    rows = cover[groups]                                                 # (g, q)
     s = np.matmul(F[rows], F[cols].transpose(0, 2, 1))                   # (g, q, width * q)
     d = np.matmul(centres[rows], centres[cols].transpose(0, 2, 1))
-    ok = _allowed_dots(d, sep_cos) & valid[:, None, :] & (rows[:, :, None] != cols[:, None, :])
-    ok &= use[rows][:, :, None]
+    ok = _allowed_dots(d, sep_cos) & use[cols][:, None, :] & use[rows][:, :, None]
+    ok &= rows[:, :, None] != cols[:, None, :]
     s[~ok] = -np.inf
     s = s.reshape(groups.size * q, -1)
     cols_r = np.repeat(cols, q, axis=0)                                  # (g * q, width * q)
@@ -554,61 +586,74 @@ def _fine_batch(F, centres, sep_cos, partners, use, children, lists, groups):
         top = np.argpartition(-s, partners - 1, axis=1)[:, :partners]
     else:
         top = np.broadcast_to(np.arange(s.shape[1]), s.shape)
-    keep = np.isfinite(np.take_along_axis(s, top, axis=1))
+    v = np.take_along_axis(s, top, axis=1)
+    keep = np.isfinite(v)
     r = np.broadcast_to(rows.reshape(-1, 1), top.shape)[keep]
     c = np.take_along_axis(cols_r, top, axis=1)[keep]
-    return r, c
+    return r, c, v[keep]
 
 
-def hierarchical_pairs(F, centres, use, Fc, coarse, use_c, children, offset, sep_cos, partners,
+def hierarchical_pairs(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners,
                        memory_gb=4.0, threads=1):
     """Surviving pairs (i, j), i < j, sorted, of the coarse-to-fine screen (see the notes above)."""
     n = F.shape[0]
+    use = np.asarray(use, bool)
     if n == 0 or not use.any():
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
-    lists = coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c, memory_gb, threads)
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c, memory_gb, threads)
     indptr = lists[0]
-    q = children.shape[1]
-    live = np.flatnonzero(use[children].any(axis=1))
+    use_p, F_p, centres_p = _padded(use, F, centres)
+    q = cover.shape[1]
+    live = np.flatnonzero(use_p[cover].any(axis=1))
     live = live[np.argsort(np.diff(indptr)[live], kind="stable")]      # batches of similar list lengths
     width = max(1, int(np.diff(indptr).max()) * q)
-    # per batch: scores, dots and masks of (g q) x width entries, about 16 bytes each, in a 1/16 of memory_gb
-    step = int(max(8, min(512, memory_gb * 1e9 / 16 / 16 / (q * width * F.shape[1] / 32 + q * width))))
+    # per batch: gathered vectors, scores, dots and masks of q x width entries per group in 1/16 of memory_gb
+    step = int(max(8, min(512, memory_gb * 1e9 / 16 / (q * width * (4 * F.shape[1] + 40) + 4 * width * F.shape[1]))))
     batches = [live[lo:lo + step] for lo in range(0, live.size, step)]
     out = [None] * len(batches)
 
     def batch(k):
-        out[k] = _fine_batch(F, centres, sep_cos, partners, use, children, lists, batches[k])
+        out[k] = _fine_batch(F_p, centres_p, sep_cos, partners, use_p, cover, lists, batches[k])
 
     _run(batch, range(len(batches)), max(1, int(threads or 1)))
     if not out:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     r = np.concatenate([o[0] for o in out]).astype(np.int64)
     c = np.concatenate([o[1] for o in out]).astype(np.int64)
-    key = np.minimum(r, c) * n + np.maximum(r, c)
+    v = np.concatenate([o[2] for o in out])
+    # a fine centre covered by several coarse centres got a selection from each: its K best of their union
+    key = r * n + c
+    order = np.argsort(key, kind="stable")
+    key, v = key[order], v[order]
+    first = np.concatenate([[True], key[1:] != key[:-1]]) if key.size else np.zeros(0, bool)
+    key, v = key[first], v[first]
+    sel_r, sel_c, _ = _select(key // n, key % n, v, n, partners)
+    key = np.minimum(sel_r, sel_c) * n + np.maximum(sel_r, sel_c)
     key.sort()
     if key.size:
         key = key[np.concatenate([[True], key[1:] != key[:-1]])]
     return (key // n).astype(np.int64), (key % n).astype(np.int64)
 
 
-def hierarchical_rank(F, centres, use, Fc, coarse, use_c, children, parent, offset, sep_cos, partners, i, j):
+def hierarchical_rank(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners, i, j):
     """Rank of the pair (i, j) in the coarse-to-fine screen keeping ``partners`` at both levels: the
     better end's rank among its candidates (it survives when this is < partners), or None when j is not
     a candidate of i (the coarse stage dropped the pair)."""
-    lists = coarse_partner_lists(Fc, coarse, sep_cos, offset, partners, use_c)
-    return _hier_rank(F, centres, use, children, parent, lists, sep_cos, i, j)
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c)
+    return _hier_rank(F, centres, use, cover, lists, sep_cos, i, j)
 
 
-def _hier_rank(F, centres, use, children, parent, lists, sep_cos, i, j):
+def _hier_rank(F, centres, use, cover, lists, sep_cos, i, j):
     indptr, indices = lists
+    n = F.shape[0]
     best = None
     for a, b in ((i, j), (j, i)):
-        p = parent[a]
-        cols = children[indices[indptr[p]:indptr[p + 1]]].ravel()
+        over = np.flatnonzero(np.any(cover == a, axis=1))             # coarse centres covering a
+        parts = np.concatenate([indices[indptr[p]:indptr[p + 1]] for p in over])
+        cols = np.unique(cover[parts].ravel())
+        cols = cols[cols < n]
         if not np.any(cols == b):
             continue
-        cols = np.sort(cols)
         ok = _allowed_dots(centres[cols] @ centres[a], sep_cos) & use[cols] & (cols != a)
         s = np.where(ok, F[cols] @ F[a], -np.inf)
         v = s[np.searchsorted(cols, b)]           # the same product as the others (no rounding apart)
@@ -622,12 +667,12 @@ def screen_pairs_hierarchical(spec, spec_c, centres, sep_cos, partners, levels, 
     """The pairs of one radius that the fast search scans exactly, by the coarse-to-fine screen with the
     coarse rings ``spec_c`` (same radius, the grid ``levels`` coarser): (i, j), i < j, sorted."""
     nside = hp.npix2nside(centres.shape[0])
-    coarse, parent, children, offset = coarse_grid(nside, levels)
+    coarse, parent, cover, radius = coarse_grid(nside, levels)
     use = usable_rings(spec, min_valid_fraction)
     F = screen_vectors(spec, use, mmax, dim)
-    use_c = coarse_use(use, children, spec_c)
+    use_c = coarse_use(use, cover, spec_c)
     Fc = screen_vectors(spec_c, use_c, mmax, dim)
-    return hierarchical_pairs(F, centres, use, Fc, coarse, use_c, children, offset, sep_cos, partners,
+    return hierarchical_pairs(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners,
                               memory_gb, threads)
 
 
@@ -725,19 +770,19 @@ def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None, hier_partners=
     levels = int(getattr(plan, "screen_levels", 0) or 0)
     if levels > 0:
         ks = tuple(hier_partners) or (plan.screen_partners,)
-        coarse, parent, children, offset = coarse_grid(nside, levels)
+        coarse, parent, cover, radius = coarse_grid(nside, levels)
         for ir in sorted({b["ir"] for b in best if b is not None}):
             spec = ring_set(plan, ir)
             use = usable_rings(spec, plan.min_valid_fraction)
             F = screen_vectors(spec, use, plan.screen_mmax, dim)
             spec_c = coarse_ring_set(plan, ir)
-            use_c = coarse_use(use, children, spec_c)
+            use_c = coarse_use(use, cover, spec_c)
             Fc = screen_vectors(spec_c, use_c, plan.screen_mmax, dim)
             for k in ks:
-                lists = coarse_partner_lists(Fc, coarse, plan.sep_cos, offset, k, use_c)
+                lists = coarse_partner_lists(Fc, coarse, plan.sep_cos, radius, k, use_c)
                 for b in best:
                     if b is not None and b["ir"] == ir:
-                        b.setdefault("hier_rank", {})[k] = _hier_rank(F, plan.centres, use, children, parent, lists,
+                        b.setdefault("hier_rank", {})[k] = _hier_rank(F, plan.centres, use, cover, lists,
                                                                       plan.sep_cos, b["i"], b["j"])
     for q, b in enumerate(best):
         if b is not None:
