@@ -92,8 +92,7 @@ AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlati
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
 TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
-COVER_FACTOR = 1.5        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
-HIERARCHY_MIN_NSIDE = 64  # search.screen_levels null: one coarse level from this nside_centers on
+COVER_FACTOR = 1.0        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
 
@@ -118,6 +117,23 @@ REFERENCE_CAMPAIGN_ALL_FEATURES: dict = dict(
     ranks={16: {0: 92, 1: 2, 2: 1, 3: 2, 7: 1, 8: 1},
            32: {0: 96, 1: 2, 54: 1},
            64: {0: 106, 1: 3}},
+)
+
+
+# Survival through the coarse-to-fine screen (one coarse level, COVER_FACTOR 1) and the single-level screen
+# at nside_centers 64, measured with scripts/benchmark_hierarchy.py (--skies 6, seed 2024: 6 tori and 6
+# half-turn spaces); ranks: {K: {rank: number of detected pairs}}, a pair survives K partners when its rank
+# is < K (a rank of None would be a pair dropped at the coarse level: none was).  Every detected pair had
+# the same rank in both screens, at every K measured (4, 8, 16, 32, 64).
+REFERENCE_CAMPAIGN_HIERARCHY: dict = dict(
+    campaign=("6 tori and 6 half-turn spaces E2 of random size, orientation and observer; noiseless Sachs-Wolfe "
+              "skies, Nside 64, lmax 128, 3 deg beam; separations 10-180 deg; radii 10-90 deg step 1; screen "
+              f"scores in {SCREEN_DIM} principal directions; coarse-to-fine screen with 1 coarse level (Nside 32)"),
+    s_min=0.6,
+    nside_centers=64,
+    levels=1,
+    ranks={K: {0: 50, 1: 7, 2: 1} for K in (4, 8, 16, 32, 64)},
+    single_level_ranks={0: 50, 1: 7, 2: 1},
 )
 
 
@@ -477,14 +493,17 @@ def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=
 # the cover radius (below), so that no allowed fine pair is lost to the range test.
 # A coarse centre covers the fine centres within ``COVER_FACTOR`` times the largest angle of a fine
 # centre from its parent (the coarse pixel holding it in the NESTED hierarchy; the plan's centres are in
-# RING order and are mapped through it): its 4^L children and the nearer children of its neighbours (at
-# one level, 6.0 fine centres per coarse centre on average at nside_centers 16, 6.9 at 64).  Children
-# alone (factor 1) are not enough on coarse grids: the coarse centre nearest a circle's true centre is
-# often a neighbour of the parent of the fine centre nearest it, and the parent pair can rank far down
-# (measured on the torus of the tests at nside_centers 16, coarse Nside 8: the parent pair of the best
-# grid pair ranked 74 of 768, the neighbouring coarse pair 0; with factor 1.5 the fast search keeps the
-# exhaustive top rows).  The wider candidate sets also let each fine centre choose better: at
-# nside_centers 64, 1.63 M instead of 2.01 M survivors at K = 64 (one radius, 50 deg).
+# RING order and are mapped through it): with factor 1 at one level, exactly its 4 children; with more
+# levels or a larger factor, also the nearer children of its neighbours.  Children alone suffice where
+# the coarse grid is fine enough for the rings' features to vary little between neighbouring coarse
+# centres: measured at nside_centers 64 (coarse Nside 32, 1.8 deg; REFERENCE_CAMPAIGN_HIERARCHY) and
+# at 32 (the tests).  On a coarse Nside 8 (7.3 deg) they do not: the coarse centre nearest a circle's
+# true centre is often a neighbour of the parent of the fine centre nearest it, and the parent pair
+# ranks far down (the torus of the tests at nside_centers 16: the parent pair of the best grid pair
+# ranked 74 of 768, the neighbouring coarse pair 0); factor 1.5 (6 fine centres per coarse one) keeps
+# the best pairs there but still loses pairs of S 0.6-0.7 that the exhaustive search lists, and costs
+# 1.5 times the fine products at nside_centers 64, so the default stays 1 and the coarse-to-fine
+# screen is the default only from nside_centers 64 on (config.SearchSection.screen_setup).
 # A fine centre's candidates are the fine centres covered by the kept partners of every coarse centre
 # covering it (and by those coarse centres themselves); each usable fine centre keeps its ``partners``
 # best candidates by fine screen score within the exact separation range (inclusive test, SEP_TOL) among
@@ -574,6 +593,8 @@ def _fine_batch(F, centres, sep_cos, partners, use, cover, lists, groups):
                                              indices.size - 1)], 0)
     pad = use.size - 1
     cols = np.where(np.repeat(slot, q, axis=1), cover[part].reshape(groups.size, width * q), pad)
+    cols.sort(axis=1)                                                    # covers overlap: each column once
+    cols[:, 1:][cols[:, 1:] == cols[:, :-1]] = pad
     rows = cover[groups]                                                 # (g, q)
     s = np.matmul(F[rows], F[cols].transpose(0, 2, 1))                   # (g, q, width * q)
     d = np.matmul(centres[rows], centres[cols].transpose(0, 2, 1))
@@ -791,22 +812,26 @@ def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None, hier_partners=
     return out
 
 
-def default_levels(nside_centers):
-    """Coarse levels of the screen when ``search.screen_levels`` is null (see ``HIERARCHY_MIN_NSIDE``)."""
-    return 1 if int(nside_centers) >= HIERARCHY_MIN_NSIDE else 0
-
-
 def describe(nside_centers, partners, levels=0):
-    """What the screen is, with the survival measured on the reference campaign (for summaries)."""
-    ref = REFERENCE_CAMPAIGN.get("ranks", {})
+    """What the screen is, with the survival measured on the reference campaign (for summaries): the
+    coarse-to-fine campaign (nside_centers 64) when ``levels`` > 0, else the single-level campaigns at the
+    nside_centers nearest this one (16, 32 or 64)."""
     out = dict(statistic="correlation of |m|-weighted amplitude and bispectrum features (twist and sense invariant)",
                partners=int(partners), levels=int(levels), triple_dim=TRIPLE_DIM, amplitude_share=AMPLITUDE_SHARE,
                band_fraction=BAND_FRACTION, screen_survival=None, screen_survival_basis=None)
-    if ref:
-        near = min(ref, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))
-        ranks = [r for r, count in ref[near].items() for _ in range(count)]
-        out["screen_survival"] = survival_rate(ranks, partners)
-        out["screen_survival_basis"] = (f"{len(ranks)} injected pairs detected by the exhaustive search "
-                                        f"(best grid S > {REFERENCE_CAMPAIGN['s_min']}) at nside_centers {near}: "
-                                        + REFERENCE_CAMPAIGN["campaign"])
+    hier = REFERENCE_CAMPAIGN_HIERARCHY
+    refs = {k: (v, REFERENCE_CAMPAIGN) for k, v in REFERENCE_CAMPAIGN.get("ranks", {}).items()}
+    refs[hier["nside_centers"]] = (hier["single_level_ranks"], hier)
+    if levels > 0:
+        measured = sorted(hier["ranks"])
+        k_ref = min((k for k in measured if k >= partners), default=measured[-1])
+        counts, near, camp = hier["ranks"][k_ref], hier["nside_centers"], hier
+    else:
+        near = min(refs, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))
+        counts, camp = refs[near]
+    ranks = [r for r, count in counts.items() for _ in range(count)]
+    out["screen_survival"] = survival_rate(ranks, partners)
+    out["screen_survival_basis"] = (f"{len(ranks)} injected pairs detected by the exhaustive search "
+                                    f"(best grid S > {camp['s_min']}) at nside_centers {near}, K = {int(partners)}, worst rank "
+                                    f"{max(ranks)}: " + camp["campaign"])
     return out

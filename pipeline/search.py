@@ -142,20 +142,10 @@ def _screen_fields(scfg, compute):
         return {}
     from . import screen
 
-    levels = screen_levels_for(scfg)
-    return dict(method="fast", screen_partners=scfg.screen_partners, screen_mmax=scfg.screen_mmax,
+    partners, levels = scfg.screen_setup()
+    return dict(method="fast", screen_partners=partners, screen_mmax=scfg.screen_mmax,
                 memory_gb=(compute.memory_gb if compute is not None else 4.0), screen_levels=levels,
-                screen=screen.describe(scfg.nside_centers, scfg.screen_partners, levels))
-
-
-def screen_levels_for(scfg):
-    """Coarse levels of the fast screen: ``search.screen_levels``, or when null the default for the grid
-    (twinring.screen.default_levels)."""
-    from . import screen
-
-    if scfg.screen_levels is not None:
-        return int(scfg.screen_levels)
-    return screen.default_levels(scfg.nside_centers)
+                screen=screen.describe(scfg.nside_centers, partners, levels))
 
 
 def count_pairs(plan: SearchPlan) -> int:
