@@ -19,7 +19,7 @@ In one run:
 4. survival: the fraction of injected circle pairs detected by the exhaustive search (best grid pair
    S > 0.6) that pass the default screen at nside_centers 64, radii 10-90 deg step 1, over this sky and
    ``--skies`` tori and half-turn spaces of random size, orientation and observer
-   (:func:`twinring.screen.known_pair_ranks`: rank, or with coarse levels hier_rank, < K).  The larger
+   (:func:`twinring.search.known_pair_ranks`: rank, or with coarse levels hier_rank, < K).  The larger
    campaign is ``scripts/benchmark_hierarchy.py``.
 
 The machine's load average is printed at the start and the end (the machine may be shared).  Last
@@ -163,7 +163,7 @@ def survival(prepared, circ, n_skies, seed):
         scfg = SearchSection(family="general", method="fast", nside_centers=64, radius_deg=(10.0, 90.0, 1.0),
                              separation_deg=(10.0, 180.0))
         plan = search.make_plan(p, scfg)
-        kr = screen.known_pair_ranks(plan, c, s_min=0.6)
+        kr = search.known_pair_ranks(plan, c, s_min=0.6)
         ranks += [k["hier_rank"][plan.screen_partners] if plan.screen_levels else k["rank"] for k in kr]
         search._RING_CACHE.clear()
         search._COARSE_CACHE.clear()

@@ -5,7 +5,7 @@ On the reference campaign of ``scripts/benchmark_screen.py`` (``--skies`` tori a
 spaces E2 of random size, orientation and observer; noiseless Sachs-Wolfe skies, Nside 64, lmax 128,
 3 deg beam), searched at ``--nside-centers`` (default 64) on radii 10-90 deg step 1, separations
 10-180 deg: every injected pair the exhaustive search detects (best grid pair S > 0.6, evaluated
-exactly near the truth, :func:`twinring.screen.known_pair_ranks`; only the radii next to each pair are
+exactly near the truth, :func:`twinring.search.known_pair_ranks`; only the radii next to each pair are
 computed) is ranked by the single-level screen and by the coarse-to-fine screen with ``--levels``
 coarse levels keeping K partners at both levels, for each K in ``--partners``.  Prints per sky the
 ranks, then the survival at each K with the number of pairs.
@@ -52,7 +52,7 @@ def main(argv=None):
                              radius_deg=(10.0, 90.0, 1.0), separation_deg=(10.0, 180.0),
                              screen_partners=max(args.partners), screen_levels=args.levels)
         plan = search.make_plan(p, scfg)
-        kr = screen.known_pair_ranks(plan, circ, s_min=0.6, hier_partners=tuple(args.partners))
+        kr = search.known_pair_ranks(plan, circ, s_min=0.6, hier_partners=tuple(args.partners))
         single += [k["rank"] for k in kr]
         for k in args.partners:
             hier[k] += [x["hier_rank"][k] for x in kr]

@@ -251,7 +251,7 @@ def test_fast_equals_exhaustive_on_a_torus(torus_sky):
     top = _assert_same_top(exh, fast, pred, plan_f.grid_deg)
     # all nine pass the screen; one edge pair sits badly on this coarse grid (grid S 0.67, below the
     # best chance pairs) and is not among the few refined, by either method
-    kr = screen.known_pair_ranks(plan_f, pred, s_min=0.6)
+    kr = search.known_pair_ranks(plan_f, pred, s_min=0.6)
     assert len(kr) == 9 and max(k["rank"] for k in kr) < plan_f.screen_partners
     assert sum(_found(top, c1, c2, a, plan_f.grid_deg) for c1, c2, a in pred) >= 8
 
@@ -317,7 +317,7 @@ def test_survival_of_injected_pairs():
         scfg = SearchSection(family="general", method="fast", nside_centers=16, radius_deg=(20.0, 60.0, 2.0),
                              screen_partners=16)
         plan = search.make_plan(prepared, scfg)
-        kr = screen.known_pair_ranks(plan, _predicted(els, obs, rot), s_min=0.6)
+        kr = search.known_pair_ranks(plan, _predicted(els, obs, rot), s_min=0.6)
         ranks += [k["rank"] for k in kr]
     assert len(ranks) >= 15
     assert screen.survival_rate(ranks, 16) >= 0.99
@@ -461,7 +461,7 @@ def test_hierarchical_fast_equals_exhaustive_on_a_torus(torus_sky):
     assert plan_h.screen_levels == 1 and res["fast"][0].screen_levels == 0
     assert pool_h.pairs_scanned < 0.5 * pool_e.pairs_scanned
     assert _assert_same_top(exh, hier, pred, plan_h.grid_deg) == top
-    kr = screen.known_pair_ranks(plan_h, pred, s_min=0.6)
+    kr = search.known_pair_ranks(plan_h, pred, s_min=0.6)
     assert len(kr) == 9
     assert all(k["hier_rank"][16] is not None and k["hier_rank"][16] < 16 for k in kr)
 
