@@ -496,3 +496,29 @@ def test_hierarchical_fast_equals_exhaustive_on_a_masked_sky(torus_sky):
     pred = [p for p in _predicted(_torus_elements((1.2, 1.2, 1.2)), (0, 0, 0)) if p[2] < 40]
     top = _assert_same_top(res["exhaustive"][2], hier, pred, plan_h.grid_deg)
     assert sum(_found(top, c1, c2, a, plan_h.grid_deg) for c1, c2, a in pred) >= 3
+
+
+def test_screen_defaults_follow_the_grid():
+    # null keys: one coarse level and K = 32 from nside_centers 64 on (where REFERENCE_CAMPAIGN_HIERARCHY
+    # measured survival), the single-level screen with K = 64 below; explicit keys win
+    from twinring.config import config_from_dict
+
+    def setup(**search):
+        cfg = config_from_dict({"search": {"family": "general", "method": "fast", **search}})
+        return cfg.search.screen_setup()
+
+    assert setup(nside_centers=64) == (32, 1)
+    assert setup(nside_centers=128) == (32, 1)
+    assert setup(nside_centers=32) == (64, 0)
+    assert setup(nside_centers=64, screen_levels=0) == (32, 0)
+    assert setup(nside_centers=64, screen_partners=64, screen_levels=2) == (64, 2)
+    assert setup(nside_centers=16, screen_levels=1) == (64, 1)
+    ref = screen.REFERENCE_CAMPAIGN_HIERARCHY
+    worst = max(ref["ranks"][32])
+    assert worst < 32 and ref["nside_centers"] == 64
+    d = screen.describe(64, 32, 1)
+    assert d["levels"] == 1 and d["screen_survival"] == 1.0
+    n = sum(ref["ranks"][32].values())
+    assert d["screen_survival_basis"].startswith(f"{n} injected pairs") and "K = 32" in d["screen_survival_basis"]
+    # a K below the worst measured rank is reported as losing pairs
+    assert screen.describe(64, worst, 1)["screen_survival"] < 1.0
