@@ -125,7 +125,7 @@ class SearchSection:
     # FINE_GRID_NSIDE on, one coarse level and K = FINE_GRID_PARTNERS (survival measured there on the
     # reference campaign: twinring.screen.REFERENCE_CAMPAIGN_HIERARCHY), else the single-level screen, K = 64
     FINE_GRID_NSIDE = 64
-    FINE_GRID_PARTNERS = 32
+    FINE_GRID_PARTNERS = 16
 
     def screen_setup(self):
         """(partners K, coarse levels) of the fast screen: the keys, or their defaults for the grid when null."""

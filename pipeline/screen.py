@@ -96,7 +96,7 @@ AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlati
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
 TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
-COVER_FACTOR = 1.0        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
+COVER_FACTOR = 1.5        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
 
@@ -497,17 +497,18 @@ def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=
 # the cover radius (below), so that no allowed fine pair is lost to the range test.
 # A coarse centre covers the fine centres within ``COVER_FACTOR`` times the largest angle of a fine
 # centre from its parent (the coarse pixel holding it in the NESTED hierarchy; the plan's centres are in
-# RING order and are mapped through it): with factor 1 at one level, exactly its 4 children; with more
-# levels or a larger factor, also the nearer children of its neighbours.  Children alone suffice where
-# the coarse grid is fine enough for the rings' features to vary little between neighbouring coarse
-# centres: measured at nside_centers 64 (coarse Nside 32, 1.8 deg; REFERENCE_CAMPAIGN_HIERARCHY) and
-# at 32 (the tests).  On a coarse Nside 8 (7.3 deg) they do not: the coarse centre nearest a circle's
-# true centre is often a neighbour of the parent of the fine centre nearest it, and the parent pair
-# ranks far down (the torus of the tests at nside_centers 16: the parent pair of the best grid pair
-# ranked 74 of 768, the neighbouring coarse pair 0); factor 1.5 (6 fine centres per coarse one) keeps
-# the best pairs there but still loses pairs of S 0.6-0.7 that the exhaustive search lists, and costs
-# 1.5 times the fine products at nside_centers 64, so the default stays 1 and the coarse-to-fine
-# screen is the default only from nside_centers 64 on (config.SearchSection.screen_setup).
+# RING order and are mapped through it): with factor 1 at one level, exactly its 4 children; with 1.5,
+# also the nearer children of its neighbours (6.9 fine centres per coarse centre on average at
+# nside_centers 64).  Children alone are not enough: the coarse centre nearest a circle's true centre is
+# often a neighbour of the parent of the fine centre nearest it, and the parent pair can rank far down
+# while the neighbouring coarse pair ranks 0.  Measured: at nside_centers 64 with children alone, a
+# circle of radius 14.8 deg (REFERENCE_CAMPAIGN_HIERARCHY, second campaign) whose parent pair ranked 66
+# (neighbouring coarse pairs 0) was dropped: 109 of 110 detected pairs survived; with factor 1.5 it
+# survives.  On the torus of the tests at nside_centers 16 (coarse Nside 8, 7.3 deg) the parent pair of
+# the best grid pair ranked 74 of 768; factor 1.5 keeps the best pairs there but still loses grid pairs
+# of S 0.6-0.7 that the exhaustive search lists, so the coarse-to-fine screen is the default only from
+# nside_centers 64 on (config.SearchSection.screen_setup).  Factor 1.5 costs about 1.3 s more per radius
+# at nside_centers 64 (load 3), which K = 16 instead of 32 wins back in the exact scans.
 # A fine centre's candidates are the fine centres covered by the kept partners of every coarse centre
 # covering it (and by those coarse centres themselves); each usable fine centre keeps its ``partners``
 # best candidates by fine screen score within the exact separation range (inclusive test, SEP_TOL) among
@@ -745,9 +746,13 @@ def describe(nside_centers, partners, levels=0):
     else:
         near = min(refs, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))
         counts, camp = refs[near]
-    ranks = [r for r, count in counts.items() for _ in range(count)]
-    out["screen_survival"] = survival_rate(ranks, partners)
-    out["screen_survival_basis"] = (f"{len(ranks)} injected pairs detected by the exhaustive search "
+    total = sum(counts.values())
+    kept = sum(c for r, c in counts.items() if r is not None and r < partners)
+    dropped = counts.get(None, 0)                 # dropped at the coarse level
+    out["screen_survival"] = kept / total
+    out["screen_survival_basis"] = (f"{total} injected pairs detected by the exhaustive search "
                                     f"(best grid S > {camp['s_min']}) at nside_centers {near}, K = {int(partners)}, worst rank "
-                                    f"{max(ranks)}: " + camp["campaign"])
+                                    f"{max(r for r in counts if r is not None)}"
+                                    + (f", {dropped} dropped at the coarse level" if dropped else "") + ": "
+                                    + camp["campaign"])
     return out
