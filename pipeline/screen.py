@@ -590,8 +590,9 @@ def _fine_batch(F, centres, sep_cos, partners, use, cover, lists, groups):
     """Candidates kept by the fine centres covered by the coarse centres ``groups`` (of similar numbers
     of kept coarse partners): their scores against the centres covered by the group's kept coarse
     partners, padded to the batch's longest list, one batched product; each usable row keeps its
-    ``partners`` best allowed candidates.  ``F``, ``centres``, ``use`` carry the padding entry.
-    Returns (rows, cols, scores)."""
+    ``partners`` best allowed candidates (a tie at the K-th place within a group goes either way,
+    unlike the single-level selection's lower index).  ``F``, ``centres``, ``use`` carry the padding
+    entry.  Returns (rows, cols, scores)."""
     indptr, indices = lists
     deg = indptr[groups + 1] - indptr[groups]
     width = int(deg.max())
