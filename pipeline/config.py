@@ -102,8 +102,9 @@ class SearchSection:
     refine: bool = _f(True, "bool")
     suppress_deg: float = _f(0.0, "float", min=0.0, max=90.0)
     keep_per_radius: int = _f(200, "int", min=1, max=1000000)
-    screen_partners: int = _f(64, "int", min=1, max=100000)
+    screen_partners: int | None = _f(None, "int?", min=1, max=100000)
     screen_mmax: int = _f(0, "int", min=0)
+    screen_levels: int | None = _f(None, "int?", min=0, max=4)
 
     def check(self, where):
         lo, hi, step = self.radius_deg
@@ -116,6 +117,23 @@ class SearchSection:
             raise where("separation_deg", list(self.separation_deg), "0 < min <= max <= 180 degrees")
         if self.family == "listed" and not self.listed:
             raise where("listed", None, "a table path when family is 'listed'")
+        if self.screen_levels and (self.nside_centers >> self.screen_levels) < 1:
+            raise where("screen_levels", self.screen_levels, f"at most log2(nside_centers) = "
+                        f"{self.nside_centers.bit_length() - 1} (the coarse grid needs Nside >= 1)")
+
+    # defaults of the fast screen when screen_partners / screen_levels are null: from nside_centers
+    # FINE_GRID_NSIDE on, one coarse level and K = FINE_GRID_PARTNERS (survival measured there on the
+    # reference campaign: twinring.screen.REFERENCE_CAMPAIGN_HIERARCHY), else the single-level screen, K = 64
+    FINE_GRID_NSIDE = 64
+    FINE_GRID_PARTNERS = 16
+
+    def screen_setup(self):
+        """(partners K, coarse levels) of the fast screen: the keys, or their defaults for the grid when null."""
+        fine = self.nside_centers >= self.FINE_GRID_NSIDE
+        partners = self.screen_partners if self.screen_partners is not None else (
+            self.FINE_GRID_PARTNERS if fine else 64)
+        levels = self.screen_levels if self.screen_levels is not None else (1 if fine else 0)
+        return int(partners), int(levels)
 
     def radii_deg(self):
         lo, hi, step = self.radius_deg
@@ -709,7 +727,7 @@ def search_size(cfg: "RunConfig") -> dict:
         frac = max((math.cos(math.radians(smin)) - math.cos(math.radians(smax))) / 2, 0.0)
         pairs = int(n * (n - 1) / 2 * frac)
         if s.method == "fast":
-            pairs = min(pairs, n * s.screen_partners)
+            pairs = min(pairs, n * s.screen_setup()[0])
     blocks = max(1, math.ceil(pairs / _PAIRS_PER_CHUNK))
     chunk = 56 * n * ns + 16 * n * (ns // 2 + 1) + 64 * min(pairs, _PAIRS_PER_CHUNK) + alm_bytes
     pool = n_r * blocks * 2 * min(s.keep_per_radius, max(pairs, 1)) * 33

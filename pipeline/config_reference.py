@@ -62,8 +62,12 @@ HELP = {
         "refine": "refine candidates off the grid (centres, radius, twist) by local maximisation of S",
         "suppress_deg": "centre distance within which weaker candidates are merged [deg]; 0 = 2.5 grid steps",
         "keep_per_radius": "best pairs kept per radius and chunk before merging",
-        "screen_partners": "fast method: best partners kept per centre and radius by the screen",
+        "screen_partners": "fast method: best partners kept per centre and radius by the screen; null = 16 at "
+                           "nside_centers >= 64, else 64",
         "screen_mmax": "fast method: highest Fourier mode of the screen; 0 = from the ring power",
+        "screen_levels": "fast method: score all pairs on the grid this many HEALPix levels coarser, then only "
+                         "the fine centres near kept coarse pairs; 0 = all pairs of the grid; null = 1 at "
+                         "nside_centers >= 64, else 0",
     },
     "output": {
         "dir": "run directory for every output (relative to the working directory)",

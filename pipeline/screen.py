@@ -4,7 +4,11 @@ The exhaustive general search evaluates the exact S (all twists, both senses) on
 every pair of centres at every radius.  ``fast`` first scores every pair of one
 radius with a cheap statistic that does not depend on twist or sense, keeps for
 each centre its ``screen_partners`` best partners (a pair survives when either
-end selects it) and evaluates the exact S only on the survivors.
+end selects it) and evaluates the exact S only on the survivors.  From nside_centers 64 on (by
+default; ``search.screen_levels``) the all-pairs products run on the HEALPix grid one level coarser
+and each fine centre chooses only among the children of its parent's kept coarse partners (notes at
+"coarse to fine" below): about 3-4 times less screen work at nside_centers 64, with the same survival
+of injected pairs (``REFERENCE_CAMPAIGN_HIERARCHY``).
 
 The screen statistic
 --------------------
@@ -92,6 +96,7 @@ AMPLITUDE_SHARE = 0.3     # weight of the amplitude part in the joined correlati
 BLOCK_ROWS = 1024         # centres per block of the all-pairs product
 TILE_COLS = 4096          # columns per tile of a block, thresholded on its own
 SCREEN_DIM = 128          # principal directions the scores use (0: all of the features)
+COVER_FACTOR = 1.5        # cover radius of a coarse centre, in units of the largest fine-to-parent angle
 SEP_TOL = 1e-12           # the same inclusive tolerance as twinring.search._block_pairs
 _LOWEST = np.finfo(np.float32).min
 
@@ -116,6 +121,26 @@ REFERENCE_CAMPAIGN_ALL_FEATURES: dict = dict(
     ranks={16: {0: 92, 1: 2, 2: 1, 3: 2, 7: 1, 8: 1},
            32: {0: 96, 1: 2, 54: 1},
            64: {0: 106, 1: 3}},
+)
+
+
+# Survival through the coarse-to-fine screen (one coarse level, COVER_FACTOR 1.5) and the single-level screen
+# at nside_centers 64, measured with scripts/benchmark_hierarchy.py (--skies 6, seeds 2024 and 2025: 12 tori
+# and 12 half-turn spaces in all); ranks: {K: {rank: number of detected pairs}}, a pair survives K partners
+# when its rank is < K (key None: pairs dropped at the coarse level; none with factor 1.5).  Every detected
+# pair had the same rank in both screens at every K measured (8, 16, 32, 64): 110 of 110 survive (95 %
+# lower bound 97.3 %, rule of three).  With children alone (factor 1) one pair of 110 was dropped at the
+# coarse level at every K (notes at "coarse to fine").
+REFERENCE_CAMPAIGN_HIERARCHY: dict = dict(
+    campaign=("12 tori and 12 half-turn spaces E2 of random size, orientation and observer (seeds 2024, 2025); "
+              "noiseless Sachs-Wolfe skies, Nside 64, lmax 128, 3 deg beam; separations 10-180 deg; radii 10-90 deg "
+              f"step 1; screen scores in {SCREEN_DIM} principal directions; coarse-to-fine screen with 1 coarse "
+              "level (Nside 32), cover factor 1.5"),
+    s_min=0.6,
+    nside_centers=64,
+    levels=1,
+    ranks={K: {0: 100, 1: 9, 2: 1} for K in (8, 16, 32, 64)},
+    single_level_ranks={0: 100, 1: 9, 2: 1},
 )
 
 
@@ -467,6 +492,220 @@ def screen_pairs(spec, centres, sep_cos, partners, min_valid_fraction=0.5, mmax=
     return top_partners(F, centres, sep_cos, partners, use, memory_gb, threads)
 
 
+# --------------------------------------------------------------------------- coarse to fine
+# With ``search.screen_levels`` L > 0 the all-pairs products run on the HEALPix grid L levels coarser
+# (nside_centers / 2^L, 4^L times fewer centres, 16^L times fewer pairs): rings of the same radius about
+# the coarse centres give coarse screen vectors (the same features), and each coarse centre keeps its
+# ``partners`` best coarse partners (either end, as above) within the separation range widened by twice
+# the cover radius (below), so that no allowed fine pair is lost to the range test.
+# A coarse centre covers the fine centres within ``COVER_FACTOR`` times the largest angle of a fine
+# centre from its parent (the coarse pixel holding it in the NESTED hierarchy; the plan's centres are in
+# RING order and are mapped through it): with factor 1 at one level, exactly its 4 children; with 1.5,
+# also the nearer children of its neighbours (6.9 fine centres per coarse centre on average at
+# nside_centers 64).  Children alone are not enough: the coarse centre nearest a circle's true centre is
+# often a neighbour of the parent of the fine centre nearest it, and the parent pair can rank far down
+# while the neighbouring coarse pair ranks 0.  Measured: at nside_centers 64 with children alone, a
+# circle of radius 14.8 deg (REFERENCE_CAMPAIGN_HIERARCHY, second campaign) whose parent pair ranked 66
+# (neighbouring coarse pairs 0) was dropped: 109 of 110 detected pairs survived; with factor 1.5 it
+# survives.  On the torus of the tests at nside_centers 16 (coarse Nside 8, 7.3 deg) the parent pair of
+# the best grid pair ranked 74 of 768; factor 1.5 keeps the best pairs there but still loses grid pairs
+# of S 0.6-0.7 that the exhaustive search lists, so the coarse-to-fine screen is the default only from
+# nside_centers 64 on (config.SearchSection.screen_setup).  Factor 1.5 costs about 1.3 s more per radius
+# at nside_centers 64 (load 3), which K = 16 instead of 32 wins back in the exact scans.
+# A fine centre's candidates are the fine centres covered by the kept partners of every coarse centre
+# covering it (and by those coarse centres themselves); each usable fine centre keeps its ``partners``
+# best candidates by fine screen score within the exact separation range (inclusive test, SEP_TOL) among
+# usable rings, and a pair survives when either end keeps it: the survivors are a subset of the
+# exhaustive pair set.  The fine products are only those of the candidates.
+
+
+def coarse_grid(nside, levels):
+    """The centres ``levels`` HEALPix levels coarser than the RING grid of ``nside`` and the cover:
+    (coarse centres (nc, 3) in RING order, parent (n,) coarse index of every fine centre, cover
+    (nc, q) fine indices covered by every coarse centre, padded with n, cover radius in radians: the
+    largest angle of a fine centre from its parent)."""
+    from . import rings
+
+    levels = int(levels)
+    nc_side = nside >> levels
+    if nc_side < 1 or nc_side << levels != nside:
+        raise ValueError(f"nside {nside} has no grid {levels} levels coarser")
+    n = hp.nside2npix(nside)
+    nest = hp.ring2nest(nside, np.arange(n))
+    parent = hp.nest2ring(nc_side, nest >> (2 * levels)).astype(np.int64)
+    children = np.argsort(parent, kind="stable").reshape(-1, 4 ** levels).astype(np.int64)
+    coarse = rings.center_grid(nc_side)
+    fine = rings.center_grid(nside)
+    radius = COVER_FACTOR * float(np.arccos(np.clip(np.min(np.sum(fine * coarse[parent], axis=1)), -1.0, 1.0)))
+    cos_r = math.cos(radius)
+    nc = coarse.shape[0]
+    near = np.concatenate([np.arange(nc)[None, :], hp.get_all_neighbours(nc_side, np.arange(nc))]).T   # (nc, 9)
+    cand = np.where((near >= 0)[:, :, None], children[np.maximum(near, 0)], -1).reshape(nc, -1)
+    d = np.einsum("akx,ax->ak", fine[np.maximum(cand, 0)], coarse)
+    inside = (cand >= 0) & (d >= cos_r - 1e-12)
+    inside[:, :children.shape[1]] = True                       # the children themselves, whatever rounding says
+    q = int(inside.sum(axis=1).max())
+    order = np.argsort(~inside, axis=1, kind="stable")[:, :q]
+    cover = np.where(np.take_along_axis(inside, order, axis=1), np.take_along_axis(cand, order, axis=1), n)
+    cover = np.sort(cover, axis=1)
+    return coarse, parent, cover.astype(np.int64), radius
+
+
+def widened_sep_cos(sep_cos, pad_rad):
+    """The separation range (cos max, cos min) widened by ``pad_rad`` at both ends."""
+    lo, hi = sep_cos
+    far = min(math.pi, math.acos(min(1.0, max(-1.0, lo))) + pad_rad)
+    near = max(0.0, math.acos(min(1.0, max(-1.0, hi))) - pad_rad)
+    return math.cos(far), math.cos(near)
+
+
+def coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c, memory_gb=4.0, threads=1):
+    """Per coarse centre, its kept coarse partners and itself: CSR (indptr, indices) over coarse centres."""
+    nc = Fc.shape[0]
+    ci, cj = top_partners(Fc, coarse, widened_sep_cos(sep_cos, 2 * radius), partners, use_c, memory_gb, threads)
+    own = np.arange(nc, dtype=np.int64)
+    r = np.concatenate([ci, cj, own])
+    c = np.concatenate([cj, ci, own])
+    order = np.lexsort((c, r))
+    r, c = r[order], c[order]
+    indptr = np.searchsorted(r, np.arange(nc + 1))
+    return indptr, c
+
+
+def _padded(use, F=None, centres=None):
+    """``use`` (and ``F``, ``centres``) with one more entry, index n: the cover's padding, never used."""
+    out = [np.concatenate([np.asarray(use, bool), [False]])]
+    if F is not None:
+        out.append(np.concatenate([F, np.zeros((1, F.shape[1]), F.dtype)]))
+        out.append(np.concatenate([centres, np.zeros((1, 3))]))
+    return out
+
+
+def coarse_use(use, cover, spec_c):
+    """Coarse centres that take part: a covered fine ring is usable and the coarse ring has signal."""
+    return _padded(use)[0][cover].any(axis=1) & (spec_c.norm > 0)
+
+
+def _fine_batch(F, centres, sep_cos, partners, use, cover, lists, groups):
+    """Candidates kept by the fine centres covered by the coarse centres ``groups`` (of similar numbers
+    of kept coarse partners): their scores against the centres covered by the group's kept coarse
+    partners, padded to the batch's longest list, one batched product; each usable row keeps its
+    ``partners`` best allowed candidates (a tie at the K-th place within a group goes either way,
+    unlike the single-level selection's lower index).  ``F``, ``centres``, ``use`` carry the padding
+    entry.  Returns (rows, cols, scores)."""
+    indptr, indices = lists
+    deg = indptr[groups + 1] - indptr[groups]
+    width = int(deg.max())
+    q = cover.shape[1]
+    slot = np.arange(width)[None, :] < deg[:, None]                      # (g, width)
+    part = np.where(slot, indices[np.minimum(indptr[groups][:, None] + np.arange(width)[None, :],
+                                             indices.size - 1)], 0)
+    pad = use.size - 1
+    cols = np.where(np.repeat(slot, q, axis=1), cover[part].reshape(groups.size, width * q), pad)
+    cols.sort(axis=1)                                                    # covers overlap: each column once
+    cols[:, 1:][cols[:, 1:] == cols[:, :-1]] = pad
+    rows = cover[groups]                                                 # (g, q)
+    s = np.matmul(F[rows], F[cols].transpose(0, 2, 1))                   # (g, q, width * q)
+    d = np.matmul(centres[rows], centres[cols].transpose(0, 2, 1))
+    ok = _allowed_dots(d, sep_cos) & use[cols][:, None, :] & use[rows][:, :, None]
+    ok &= rows[:, :, None] != cols[:, None, :]
+    s[~ok] = -np.inf
+    s = s.reshape(groups.size * q, -1)
+    cols_r = np.repeat(cols, q, axis=0)                                  # (g * q, width * q)
+    if s.shape[1] > partners:
+        top = np.argpartition(-s, partners - 1, axis=1)[:, :partners]
+    else:
+        top = np.broadcast_to(np.arange(s.shape[1]), s.shape)
+    v = np.take_along_axis(s, top, axis=1)
+    keep = np.isfinite(v)
+    r = np.broadcast_to(rows.reshape(-1, 1), top.shape)[keep]
+    c = np.take_along_axis(cols_r, top, axis=1)[keep]
+    return r, c, v[keep]
+
+
+def hierarchical_pairs(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners,
+                       memory_gb=4.0, threads=1):
+    """Surviving pairs (i, j), i < j, sorted, of the coarse-to-fine screen (see the notes above)."""
+    n = F.shape[0]
+    use = np.asarray(use, bool)
+    if n == 0 or not use.any():
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c, memory_gb, threads)
+    indptr = lists[0]
+    use_p, F_p, centres_p = _padded(use, F, centres)
+    q = cover.shape[1]
+    live = np.flatnonzero(use_p[cover].any(axis=1))
+    live = live[np.argsort(np.diff(indptr)[live], kind="stable")]      # batches of similar list lengths
+    width = max(1, int(np.diff(indptr).max()) * q)
+    # per batch: gathered vectors, scores, dots and masks of q x width entries per group in 1/16 of memory_gb
+    step = int(max(8, min(512, memory_gb * 1e9 / 16 / (q * width * (4 * F.shape[1] + 40) + 4 * width * F.shape[1]))))
+    batches = [live[lo:lo + step] for lo in range(0, live.size, step)]
+    out = [None] * len(batches)
+
+    def batch(k):
+        out[k] = _fine_batch(F_p, centres_p, sep_cos, partners, use_p, cover, lists, batches[k])
+
+    _run(batch, range(len(batches)), max(1, int(threads or 1)))
+    if not out:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    r = np.concatenate([o[0] for o in out]).astype(np.int64)
+    c = np.concatenate([o[1] for o in out]).astype(np.int64)
+    v = np.concatenate([o[2] for o in out])
+    # a fine centre covered by several coarse centres got a selection from each: its K best of their union
+    key = r * n + c
+    order = np.argsort(key, kind="stable")
+    key, v = key[order], v[order]
+    first = np.concatenate([[True], key[1:] != key[:-1]]) if key.size else np.zeros(0, bool)
+    key, v = key[first], v[first]
+    sel_r, sel_c, _ = _select(key // n, key % n, v, n, partners)
+    key = np.minimum(sel_r, sel_c) * n + np.maximum(sel_r, sel_c)
+    key.sort()
+    if key.size:
+        key = key[np.concatenate([[True], key[1:] != key[:-1]])]
+    return (key // n).astype(np.int64), (key % n).astype(np.int64)
+
+
+def hierarchical_rank(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners, i, j):
+    """Rank of the pair (i, j) in the coarse-to-fine screen keeping ``partners`` at both levels: the
+    better end's rank among its candidates (it survives when this is < partners), or None when j is not
+    a candidate of i (the coarse stage dropped the pair)."""
+    lists = coarse_partner_lists(Fc, coarse, sep_cos, radius, partners, use_c)
+    return _hier_rank(F, centres, use, cover, lists, sep_cos, i, j)
+
+
+def _hier_rank(F, centres, use, cover, lists, sep_cos, i, j):
+    indptr, indices = lists
+    n = F.shape[0]
+    best = None
+    for a, b in ((i, j), (j, i)):
+        over = np.flatnonzero(np.any(cover == a, axis=1))             # coarse centres covering a
+        parts = np.concatenate([indices[indptr[p]:indptr[p + 1]] for p in over])
+        cols = np.unique(cover[parts].ravel())
+        cols = cols[cols < n]
+        if not np.any(cols == b):
+            continue
+        ok = _allowed_dots(centres[cols] @ centres[a], sep_cos) & use[cols] & (cols != a)
+        s = np.where(ok, F[cols] @ F[a], -np.inf)
+        v = s[np.searchsorted(cols, b)]           # the same product as the others (no rounding apart)
+        rank = int(np.sum(s > v) + np.sum((s == v) & (cols < b)))
+        best = rank if best is None else min(best, rank)
+    return best
+
+
+def screen_pairs_hierarchical(spec, spec_c, centres, sep_cos, partners, levels, min_valid_fraction=0.5, mmax=0,
+                              memory_gb=4.0, dim=None, threads=1):
+    """The pairs of one radius that the fast search scans exactly, by the coarse-to-fine screen with the
+    coarse rings ``spec_c`` (same radius, the grid ``levels`` coarser): (i, j), i < j, sorted."""
+    nside = hp.npix2nside(centres.shape[0])
+    coarse, parent, cover, radius = coarse_grid(nside, levels)
+    use = usable_rings(spec, min_valid_fraction)
+    F = screen_vectors(spec, use, mmax, dim)
+    use_c = coarse_use(use, cover, spec_c)
+    Fc = screen_vectors(spec_c, use_c, mmax, dim)
+    return hierarchical_pairs(F, centres, use, Fc, coarse, use_c, cover, radius, sep_cos, partners,
+                              memory_gb, threads)
+
+
 # --------------------------------------------------------------------------- survival of known pairs
 def partner_rank(F, centres, sep_cos, i, j, use=None):
     """Rank of j among the partners of i by screen score (0 = best), within the separation range."""
@@ -494,85 +733,30 @@ def survival_rate(ranks, partners):
     return float(np.mean(r < partners)) if r.size else float("nan")
 
 
-def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None):
-    """Screen ranks of known circle pairs (injected or predicted) on a search plan.
-
-    ``pairs``: iterable of (c1, c2, radius_deg) with unit-vector centres.  For each pair, the exact
-    S is evaluated on the grid pairs with both centres within ``reach`` grid spacings of the true
-    ones, at the grid radii within one radius step of the true radius; the best grid pair (over
-    radii and senses) stands for the pair, as it is the one the exhaustive search reports for it.
-    Pairs whose best grid S is below ``s_min`` are not detected by the exhaustive search and are
-    left out.  Returns one dict per detected pair: radius_deg (true), ir, i, j, s, sense, rank
-    (the better of the two ends; the pair survives a screen keeping K partners when rank < K) and
-    the rank of every grid radius where that radius' best grid pair also exceeds ``s_min``
-    (``ranks_by_radius``: {ir: rank}).
-    """
-    from .search import ring_set
-    from .statistic import scan_pairs
-
-    radii = np.asarray(plan.radii_deg)
-    step = float(np.min(np.diff(radii))) if radii.size > 1 else 1.0
-    nside = hp.npix2nside(plan.centres.shape[0])
-    lo, hi = plan.sep_cos
-    out = []
-    per_radius = {}
-    todo = []
-    for c1, c2, alpha in pairs:
-        c1 = np.asarray(c1, float) / np.linalg.norm(c1)
-        c2 = np.asarray(c2, float) / np.linalg.norm(c2)
-        irs = np.flatnonzero(np.abs(radii - alpha) <= step + 1e-9)
-        if irs.size == 0:
-            continue
-        a = hp.query_disc(nside, c1, math.radians(reach * plan.grid_deg), inclusive=False)
-        b = hp.query_disc(nside, c2, math.radians(reach * plan.grid_deg), inclusive=False)
-        ii, jj = np.meshgrid(a, b, indexing="ij")
-        ii, jj = np.minimum(ii, jj).ravel(), np.maximum(ii, jj).ravel()
-        d = np.sum(plan.centres[ii] * plan.centres[jj], axis=1)
-        ok = (ii != jj) & (d >= lo - SEP_TOL) & (d <= hi + SEP_TOL)
-        ii, jj = ii[ok], jj[ok]
-        if ii.size == 0:
-            continue
-        todo.append((float(alpha), irs, ii, jj))
-        for ir in irs:
-            per_radius.setdefault(int(ir), []).append(len(todo) - 1)
-    best = [None] * len(todo)
-    at_radius = [dict() for _ in todo]
-    for ir in sorted(per_radius):
-        spec = ring_set(plan, ir)
-        use = usable_rings(spec, plan.min_valid_fraction)
-        F = None
-        for q in per_radius[ir]:
-            alpha, irs, ii, jj = todo[q]
-            s, _ = scan_pairs(spec, ii, spec, jj, plan.min_valid_fraction)
-            sense = int(np.argmax(s.max(axis=1)))
-            b = int(np.argmax(s[sense]))
-            sb = float(s[sense, b])
-            if not sb >= s_min:
-                continue
-            if F is None:
-                F = screen_vectors(spec, use, plan.screen_mmax, dim)
-            rank = pair_rank(F, plan.centres, plan.sep_cos, int(ii[b]), int(jj[b]), use)
-            at_radius[q][ir] = rank
-            if best[q] is None or sb > best[q]["s"]:
-                best[q] = dict(radius_deg=alpha, ir=ir, i=int(ii[b]), j=int(jj[b]), s=sb, sense=sense, rank=rank)
-    for q, b in enumerate(best):
-        if b is not None:
-            b["ranks_by_radius"] = at_radius[q]
-            out.append(b)
-    return out
-
-
-def describe(nside_centers, partners):
-    """What the screen is, with the survival measured on the reference campaign (for summaries)."""
-    ref = REFERENCE_CAMPAIGN.get("ranks", {})
+def describe(nside_centers, partners, levels=0):
+    """What the screen is, with the survival measured on the reference campaign (for summaries): the
+    coarse-to-fine campaign (nside_centers 64) when ``levels`` > 0, else the single-level campaigns at the
+    nside_centers nearest this one (16, 32 or 64)."""
     out = dict(statistic="correlation of |m|-weighted amplitude and bispectrum features (twist and sense invariant)",
-               partners=int(partners), triple_dim=TRIPLE_DIM, amplitude_share=AMPLITUDE_SHARE,
+               partners=int(partners), levels=int(levels), triple_dim=TRIPLE_DIM, amplitude_share=AMPLITUDE_SHARE,
                band_fraction=BAND_FRACTION, screen_survival=None, screen_survival_basis=None)
-    if ref:
-        near = min(ref, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))
-        ranks = [r for r, count in ref[near].items() for _ in range(count)]
-        out["screen_survival"] = survival_rate(ranks, partners)
-        out["screen_survival_basis"] = (f"{len(ranks)} injected pairs detected by the exhaustive search "
-                                        f"(best grid S > {REFERENCE_CAMPAIGN['s_min']}) at nside_centers {near}: "
-                                        + REFERENCE_CAMPAIGN["campaign"])
+    hier = REFERENCE_CAMPAIGN_HIERARCHY
+    refs = {k: (v, REFERENCE_CAMPAIGN) for k, v in REFERENCE_CAMPAIGN.get("ranks", {}).items()}
+    refs[hier["nside_centers"]] = (hier["single_level_ranks"], hier)
+    if levels > 0:
+        measured = sorted(hier["ranks"])
+        k_ref = min((k for k in measured if k >= partners), default=measured[-1])
+        counts, near, camp = hier["ranks"][k_ref], hier["nside_centers"], hier
+    else:
+        near = min(refs, key=lambda k: (abs(math.log2(k) - math.log2(max(1, nside_centers))), k))
+        counts, camp = refs[near]
+    total = sum(counts.values())
+    kept = sum(c for r, c in counts.items() if r is not None and r < partners)
+    dropped = counts.get(None, 0)                 # dropped at the coarse level
+    out["screen_survival"] = kept / total
+    out["screen_survival_basis"] = (f"{total} injected pairs detected by the exhaustive search "
+                                    f"(best grid S > {camp['s_min']}) at nside_centers {near}, K = {int(partners)}, worst rank "
+                                    f"{max(r for r in counts if r is not None)}"
+                                    + (f", {dropped} dropped at the coarse level" if dropped else "") + ": "
+                                    + camp["campaign"])
     return out

@@ -23,7 +23,7 @@ from astropy.table import Table
 import scipy.fft
 from scipy.optimize import minimize
 
-from . import rings
+from . import rings, screen
 from .statistic import m_weights, ring_spectra, scan_pairs, s_curve
 from .config import InputError
 
@@ -53,6 +53,7 @@ class SearchPlan:
     screen_partners: int = 64        # fast: best partners kept per centre and radius
     screen_mmax: int = 0             # fast: highest m of the screen (0 = from the ring power)
     memory_gb: float = 4.0           # fast: memory for the screen's blocked products
+    screen_levels: int = 0           # fast: levels of the coarse grid of a coarse-to-fine screen (0: one level)
     screen: dict = field(default_factory=dict)   # fast: what the screen is and its reference survival
     ring_filter: np.ndarray | None = None   # prepare.filter optimal: ring weights per radius (twinring.filters)
 
@@ -139,11 +140,10 @@ def make_plan(prepared, scfg, compute=None, listed_table=None, key="", ring_filt
 def _screen_fields(scfg, compute):
     if scfg.family != "general" or scfg.method != "fast":
         return {}
-    from . import screen
-
-    return dict(method="fast", screen_partners=scfg.screen_partners, screen_mmax=scfg.screen_mmax,
-                memory_gb=(compute.memory_gb if compute is not None else 4.0),
-                screen=screen.describe(scfg.nside_centers, scfg.screen_partners))
+    partners, levels = scfg.screen_setup()
+    return dict(method="fast", screen_partners=partners, screen_mmax=scfg.screen_mmax,
+                memory_gb=(compute.memory_gb if compute is not None else 4.0), screen_levels=levels,
+                screen=screen.describe(scfg.nside_centers, partners, levels))
 
 
 def count_pairs(plan: SearchPlan) -> int:
@@ -158,11 +158,14 @@ def _block_pairs(plan: SearchPlan, ib, ir=None):
     if plan.family in ("antipodal", "listed"):
         return first, plan.partner[first]
     if plan.method == "fast" and ir is not None:
-        from . import screen
-
-        i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
-                                   plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb,
-                                   threads=plan.threads)
+        if plan.screen_levels > 0:
+            i, j = screen.screen_pairs_hierarchical(
+                ring_set(plan, ir), coarse_ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
+                plan.screen_levels, plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb, threads=plan.threads)
+        else:
+            i, j = screen.screen_pairs(ring_set(plan, ir), plan.centres, plan.sep_cos, plan.screen_partners,
+                                       plan.min_valid_fraction, plan.screen_mmax, plan.memory_gb,
+                                       threads=plan.threads)
         if first.size != plan.centres.shape[0]:
             inb = np.zeros(plan.centres.shape[0], dtype=bool)
             inb[first] = True
@@ -198,6 +201,112 @@ def ring_set(plan: SearchPlan, ir):
     _RING_CACHE.clear()   # one radius at a time per process bounds memory
     _RING_CACHE[ir] = (plan, spec)
     return spec
+
+
+_COARSE_CACHE: dict = {}
+
+
+def coarse_ring_set(plan: SearchPlan, ir):
+    """Spectra of the rings at radius index ``ir`` about the centres of the grid ``plan.screen_levels``
+    HEALPix levels coarser than the plan's (the coarse stage of the screen; cached per process)."""
+    hit = _COARSE_CACHE.get(ir)
+    if hit is not None and hit[0] is plan:
+        return hit[1]
+    nside = hp.npix2nside(plan.centres.shape[0]) >> plan.screen_levels
+    alpha = math.radians(plan.radii_deg[ir])
+    vals, wts = rings.sample_rings(plan.alm, plan.lmax, rings.center_grid(nside), alpha, plan.nsamp[ir], None,
+                                   plan.mask, nthreads=plan.threads)
+    spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
+    _COARSE_CACHE.clear()
+    _COARSE_CACHE[ir] = (plan, spec)
+    return spec
+
+
+# --------------------------------------------------------------------------- survival of known pairs
+def known_pair_ranks(plan, pairs, s_min=0.6, reach=1.6, dim=None, hier_partners=()):
+    """Screen ranks of known circle pairs (injected or predicted) on a search plan.
+
+    ``pairs``: iterable of (c1, c2, radius_deg) with unit-vector centres.  For each pair, the exact
+    S is evaluated on the grid pairs with both centres within ``reach`` grid spacings of the true
+    ones, at the grid radii within one radius step of the true radius; the best grid pair (over
+    radii and senses) stands for the pair, as it is the one the exhaustive search reports for it.
+    Pairs whose best grid S is below ``s_min`` are not detected by the exhaustive search and are
+    left out.  Returns one dict per detected pair: radius_deg (true), ir, i, j, s, sense, rank
+    (the better of the two ends; the pair survives a screen keeping K partners when rank < K) and
+    the rank of every grid radius where that radius' best grid pair also exceeds ``s_min``
+    (``ranks_by_radius``: {ir: rank}).  With ``plan.screen_levels`` > 0, ``hier_rank`` gives for every
+    K in ``hier_partners`` (default: the plan's ``screen_partners``) the pair's rank in the coarse-to-fine
+    screen keeping K partners at both levels (:func:`twinring.screen.hierarchical_rank`; None when the
+    coarse stage drops it), at the best pair's radius: the pair survives that screen when it is not None
+    and < K.  (Here rather than in twinring.screen, which then needs nothing from this module.)
+    """
+    radii = np.asarray(plan.radii_deg)
+    step = float(np.min(np.diff(radii))) if radii.size > 1 else 1.0
+    nside = hp.npix2nside(plan.centres.shape[0])
+    lo, hi = plan.sep_cos
+    out = []
+    per_radius = {}
+    todo = []
+    for c1, c2, alpha in pairs:
+        c1 = np.asarray(c1, float) / np.linalg.norm(c1)
+        c2 = np.asarray(c2, float) / np.linalg.norm(c2)
+        irs = np.flatnonzero(np.abs(radii - alpha) <= step + 1e-9)
+        if irs.size == 0:
+            continue
+        a = hp.query_disc(nside, c1, math.radians(reach * plan.grid_deg), inclusive=False)
+        b = hp.query_disc(nside, c2, math.radians(reach * plan.grid_deg), inclusive=False)
+        ii, jj = np.meshgrid(a, b, indexing="ij")
+        ii, jj = np.minimum(ii, jj).ravel(), np.maximum(ii, jj).ravel()
+        d = np.sum(plan.centres[ii] * plan.centres[jj], axis=1)
+        ok = (ii != jj) & (d >= lo - screen.SEP_TOL) & (d <= hi + screen.SEP_TOL)
+        ii, jj = ii[ok], jj[ok]
+        if ii.size == 0:
+            continue
+        todo.append((float(alpha), irs, ii, jj))
+        for ir in irs:
+            per_radius.setdefault(int(ir), []).append(len(todo) - 1)
+    best = [None] * len(todo)
+    at_radius = [dict() for _ in todo]
+    for ir in sorted(per_radius):
+        spec = ring_set(plan, ir)
+        use = screen.usable_rings(spec, plan.min_valid_fraction)
+        F = None
+        for q in per_radius[ir]:
+            alpha, irs, ii, jj = todo[q]
+            s, _ = scan_pairs(spec, ii, spec, jj, plan.min_valid_fraction)
+            sense = int(np.argmax(s.max(axis=1)))
+            b = int(np.argmax(s[sense]))
+            sb = float(s[sense, b])
+            if not sb >= s_min:
+                continue
+            if F is None:
+                F = screen.screen_vectors(spec, use, plan.screen_mmax, dim)
+            rank = screen.pair_rank(F, plan.centres, plan.sep_cos, int(ii[b]), int(jj[b]), use)
+            at_radius[q][ir] = rank
+            if best[q] is None or sb > best[q]["s"]:
+                best[q] = dict(radius_deg=alpha, ir=ir, i=int(ii[b]), j=int(jj[b]), s=sb, sense=sense, rank=rank)
+    levels = int(getattr(plan, "screen_levels", 0) or 0)
+    if levels > 0:
+        ks = tuple(hier_partners) or (plan.screen_partners,)
+        coarse, parent, cover, radius = screen.coarse_grid(nside, levels)
+        for ir in sorted({b["ir"] for b in best if b is not None}):
+            spec = ring_set(plan, ir)
+            use = screen.usable_rings(spec, plan.min_valid_fraction)
+            F = screen.screen_vectors(spec, use, plan.screen_mmax, dim)
+            spec_c = coarse_ring_set(plan, ir)
+            use_c = screen.coarse_use(use, cover, spec_c)
+            Fc = screen.screen_vectors(spec_c, use_c, plan.screen_mmax, dim)
+            for k in ks:
+                lists = screen.coarse_partner_lists(Fc, coarse, plan.sep_cos, radius, k, use_c)
+                for b in best:
+                    if b is not None and b["ir"] == ir:
+                        b.setdefault("hier_rank", {})[k] = screen._hier_rank(F, plan.centres, use, cover, lists,
+                                                                      plan.sep_cos, b["i"], b["j"])
+    for q, b in enumerate(best):
+        if b is not None:
+            b["ranks_by_radius"] = at_radius[q]
+            out.append(b)
+    return out
 
 
 # --------------------------------------------------------------------------- the chunk kernel

@@ -10,14 +10,17 @@ In one run:
 2. the projection to the full search at nside_centers 64, radii 10-90 deg step 1: rings, screen and
    exact scans measured at nside_centers 64 on a few radii (``--sample-radii``) and interpolated
    linearly in radius over the 81 radii, plus the separation lists (once per process) and the
-   refinement measured in step 1;
+   refinement measured in step 1; once with the single-level screen at K = 64 (the screen before the
+   coarse-to-fine one, for comparison) and once with the default screen for nside_centers 64
+   (``search.screen_levels`` and ``search.screen_partners`` null; ``--levels``, ``--partners`` override);
 3. the projection to a calibration of 100 simulations: one simulation (Gaussian sky at the default
-   ``calibrate.sim_nside``, prepare) timed, plus the grid scan of step 2 without refinement
-   (calibration needs grid peaks only), times 100;
+   ``calibrate.sim_nside``, prepare) timed, plus the default screen's grid scan of step 2 without
+   refinement (calibration needs grid peaks only), times 100;
 4. survival: the fraction of injected circle pairs detected by the exhaustive search (best grid pair
-   S > 0.6) that pass the screen, over this sky and ``--skies`` tori and half-turn spaces of random
-   size, orientation and observer (nside_centers 32, radii 20-60 deg step 2;
-   :func:`twinring.screen.known_pair_ranks`, rank < K).
+   S > 0.6) that pass the default screen at nside_centers 64, radii 10-90 deg step 1, over this sky and
+   ``--skies`` tori and half-turn spaces of random size, orientation and observer
+   (:func:`twinring.search.known_pair_ranks`: rank, or with coarse levels hier_rank, < K).  The larger
+   campaign is ``scripts/benchmark_hierarchy.py``.
 
 The machine's load average is printed at the start and the end (the machine may be shared).  Last
 line: ``general64 minutes=<m> calib100 hours=<h> survival=<fraction>``.
@@ -85,21 +88,28 @@ def timed_fast_search(prepared, scfg, compute):
     return plan, pool, cand, st, pairs
 
 
-def project_general64(prepared, compute, partners, sample_radii):
-    """Per-radius seconds (rings, screen, exact) at nside_centers 64 on ``sample_radii``, interpolated
-    over radii 10-90 deg step 1; returns (scan seconds, separation-list seconds, rows)."""
+def project_general64(prepared, compute, partners, levels, sample_radii):
+    """Per-radius seconds (rings, screen, exact) at nside_centers 64 on ``sample_radii`` with the screen of
+    ``levels`` coarse levels keeping ``partners`` (None: the defaults for the grid), interpolated over radii
+    10-90 deg step 1; returns (scan seconds, separation-list seconds, rows)."""
     scfg = SearchSection(family="general", method="fast", nside_centers=64, radius_deg=(10.0, 90.0, 1.0),
-                         separation_deg=(10.0, 180.0), screen_partners=partners)
+                         separation_deg=(10.0, 180.0), screen_partners=partners, screen_levels=levels)
     plan = search.make_plan(prepared, scfg, compute)
     t = time.perf_counter()
     screen._EXCL_CACHE.clear()
-    screen.excluded_partners(plan.centres, plan.sep_cos)
+    if plan.screen_levels:           # the coarse grid's lists, with the widened range
+        coarse, _, _, radius = screen.coarse_grid(64, plan.screen_levels)
+        screen.excluded_partners(coarse, screen.widened_sep_cos(plan.sep_cos, 2 * radius))
+    else:
+        screen.excluded_partners(plan.centres, plan.sep_cos)
     t_once = time.perf_counter() - t
     rows = []
     for r in sample_radii:
         ir = int(round(r - 10.0))
         t = time.perf_counter()
         search.ring_set(plan, ir)
+        if plan.screen_levels:
+            search.coarse_ring_set(plan, ir)
         t_r = time.perf_counter() - t
         t = time.perf_counter()
         i, _ = search._block_pairs(plan, 0, ir)
@@ -108,13 +118,15 @@ def project_general64(prepared, compute, partners, sample_radii):
         search.scan_chunk(plan, (ir, 0))
         t_e = time.perf_counter() - t
         rows.append((r, t_r, t_s, t_e, int(i.size)))
-        print(f"  nside_centers 64, radius {r:4.0f} deg: rings {t_r:5.1f} s, screen {t_s:5.1f} s, exact "
-              f"{t_e:5.1f} s on {i.size:,} pairs; {load()}", flush=True)
+        print(f"  nside_centers 64, {plan.screen_levels} coarse level(s), K = {plan.screen_partners}, radius "
+              f"{r:4.0f} deg: rings {t_r:5.1f} s, screen {t_s:5.1f} s, exact {t_e:5.1f} s on {i.size:,} pairs; "
+              f"{load()}", flush=True)
     radii = np.arange(10.0, 90.5, 1.0)
     xs = np.array([x[0] for x in rows])
     per = {k: np.interp(radii, xs, [x[q] for x in rows]) for q, k in ((1, "rings"), (2, "screen"), (3, "exact"))}
     search._RING_CACHE.clear()
-    return {k: float(v.sum()) for k, v in per.items()}, t_once, rows
+    search._COARSE_CACHE.clear()
+    return {k: float(v.sum()) for k, v in per.items()}, t_once, rows, plan
 
 
 def time_one_simulation(prepared, threads):
@@ -138,30 +150,34 @@ def prepared_cl(prepared):
     return hp.alm2cl(prepared.alm, lmax=prepared.lmax)
 
 
-def survival(prepared, circ, n_skies, partners, seed):
-    """Screen ranks of the detected injected pairs on this sky and ``n_skies`` campaign skies."""
+def survival(prepared, circ, n_skies, seed):
+    """Ranks of the detected injected pairs in the default screen at nside_centers 64 (radii 10-90 deg step 1)
+    on this sky and ``n_skies`` campaign skies: (ranks, K, levels); a rank of None (dropped at the coarse
+    level) or >= K does not survive."""
     ranks = []
     skies = [("this", prepared, circ)]
     for kind, lengths, obs, rot, sd in bs.campaign_skies(n_skies // 2 + n_skies % 2, seed)[: n_skies]:
         p, c = bs.make_sky(kind, lengths, obs, rot, sd)
         skies.append((kind, p, c))
     for kind, p, c in skies:
-        scfg = SearchSection(family="general", method="fast", nside_centers=32, radius_deg=(20.0, 60.0, 2.0),
-                             separation_deg=(10.0, 180.0), screen_partners=partners)
+        scfg = SearchSection(family="general", method="fast", nside_centers=64, radius_deg=(10.0, 90.0, 1.0),
+                             separation_deg=(10.0, 180.0))
         plan = search.make_plan(p, scfg)
-        kr = screen.known_pair_ranks(plan, c, s_min=0.6)
-        ranks += [k["rank"] for k in kr]
+        kr = search.known_pair_ranks(plan, c, s_min=0.6)
+        ranks += [k["hier_rank"][plan.screen_partners] if plan.screen_levels else k["rank"] for k in kr]
         search._RING_CACHE.clear()
-    return ranks
+        search._COARSE_CACHE.clear()
+    return ranks, plan.screen_partners, plan.screen_levels
 
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--threads", type=int, default=2)
-    ap.add_argument("--partners", type=int, default=64)
+    ap.add_argument("--partners", type=int, default=None, help="K of the projected screen (default: the grid's)")
+    ap.add_argument("--levels", type=int, default=None, help="coarse levels of the projected screen (default: the grid's)")
     ap.add_argument("--top", type=int, default=20)
     ap.add_argument("--sample-radii", type=float, nargs="+", default=(10.0, 50.0, 90.0))
-    ap.add_argument("--skies", type=int, default=4, help="campaign skies for the survival (besides this one)")
+    ap.add_argument("--skies", type=int, default=2, help="campaign skies for the survival (besides this one)")
     ap.add_argument("--seed", type=int, default=2024)
     args = ap.parse_args(argv)
     search._block_pairs = bs._cached_block_pairs
@@ -172,7 +188,7 @@ def main(argv=None):
     prepared, circ = bs.make_sky("half", lengths, observer, bs._rotation(np.random.default_rng(7)), seed=12)
 
     scfg = SearchSection(family="general", method="fast", nside_centers=32, radius_deg=(10.0, 90.0, 2.0),
-                         separation_deg=(10.0, 180.0), top=args.top, screen_partners=args.partners)
+                         separation_deg=(10.0, 180.0), top=args.top)
     plan, pool, cand, st, pairs = timed_fast_search(prepared, scfg, compute)
     print(f"general32 (fast, nside_centers 32, radii 10-90 deg step 2, {len(plan.radii_deg)} radii): "
           f"wall {st['wall']:.1f} s = rings {st['rings']:.1f} + screen {st['screen']:.1f} + exact {st['exact']:.1f} "
@@ -184,23 +200,32 @@ def main(argv=None):
     search._RING_CACHE.clear()
 
     print("projection to nside_centers 64, radii 10-90 deg step 1 (81 radii):", flush=True)
-    per, t_once, rows = project_general64(prepared, compute, args.partners, tuple(args.sample_radii))
-    scan64 = per["rings"] + per["screen"] + per["exact"] + t_once
-    general64 = scan64 + st["refine"]
-    print(f"  rings {per['rings'] / 60:.1f} min + screen {per['screen'] / 60:.1f} min + exact {per['exact'] / 60:.1f} "
-          f"min + separation lists {t_once:.1f} s + refinement {st['refine']:.1f} s (as measured at 32) = "
-          f"{general64 / 60:.1f} min", flush=True)
+    figures = {}
+    for name, partners, levels in (("single-level screen, K = 64 (before issue 16's coarse-to-fine screen)", 64, 0),
+                                   ("default screen", args.partners, args.levels)):
+        per, t_once, rows, plan64 = project_general64(prepared, compute, partners, levels, tuple(args.sample_radii))
+        scan64 = per["rings"] + per["screen"] + per["exact"] + t_once
+        general64 = scan64 + st["refine"]
+        figures[name] = (scan64, general64)
+        print(f"  {name} ({plan64.screen_levels} coarse level(s), K = {plan64.screen_partners}): rings "
+              f"{per['rings'] / 60:.1f} min + screen {per['screen'] / 60:.1f} min + exact {per['exact'] / 60:.1f} min "
+              f"+ separation lists {t_once:.1f} s + refinement {st['refine']:.1f} s (as measured at 32) = "
+              f"{general64 / 60:.1f} min", flush=True)
+    scan64, general64 = figures["default screen"]
 
     t_sim, sim_nside = time_one_simulation(prepared, args.threads)
     per_sim = t_sim + scan64
     print(f"calibration: one simulation = sky + prepare {t_sim:.2f} s (sim_nside {sim_nside} by default for "
           f"prepare.nside 64, lmax 128) + grid scan {scan64 / 60:.1f} min (no refinement) = {per_sim / 60:.1f} min; "
-          f"100 simulations = {100 * per_sim / 3600:.1f} h", flush=True)
+          f"100 simulations = {100 * per_sim / 3600:.1f} h (single-level screen: "
+          f"{100 * (t_sim + figures[next(iter(figures))][0]) / 3600:.1f} h)", flush=True)
 
-    ranks = survival(prepared, circ, args.skies, args.partners, args.seed)
-    frac = screen.survival_rate(ranks, args.partners)
-    print(f"survival: {sum(r < args.partners for r in ranks)} of {len(ranks)} detected injected pairs pass the "
-          f"screen at K = {args.partners} (ranks {sorted(ranks)}; screen dimension {screen.SCREEN_DIM})")
+    ranks, K, levels = survival(prepared, circ, args.skies, args.seed)
+    ok = [r is not None and r < K for r in ranks]
+    frac = float(np.mean(ok)) if ok else float("nan")
+    print(f"survival: {sum(ok)} of {len(ranks)} detected injected pairs pass the default screen at nside_centers 64 "
+          f"({levels} coarse level(s), K = {K}; ranks {sorted(ranks, key=lambda r: (r is None, r or 0))}; screen "
+          f"dimension {screen.SCREEN_DIM})")
     print(f"end: {load()}")
     print(f"general64 minutes={general64 / 60:.1f} calib100 hours={100 * per_sim / 3600:.1f} survival={frac:.3f}")
 

@@ -147,7 +147,7 @@ def main(argv=None):
         scfg = SearchSection(family="general", method="fast", nside_centers=32, radius_deg=(20.0, 60.0, 2.0),
                              separation_deg=(10.0, 180.0), screen_partners=args.partners)
         plan = search.make_plan(p, scfg)
-        found = screen.known_pair_ranks(plan, c, s_min=0.6)
+        found = search.known_pair_ranks(plan, c, s_min=0.6)
         total += len(found)
         for ir in sorted({k["ir"] for k in found}):
             F, use = vectors(plan, ir)

@@ -14,7 +14,7 @@ including refinement).
 ``--campaign N``: instead, the survival of injected pairs through the screen on N torus and N
 half-turn skies (random sizes, rotations and observers) at the given nside_centers values:
 for every injected pair that the exhaustive search detects (best grid-pair S above --s-min),
-the screen rank of that grid pair (twinring.screen.known_pair_ranks); survival at K partners is
+the screen rank of that grid pair (twinring.search.known_pair_ranks); survival at K partners is
 the fraction with rank < K.
 
     nohup python scripts/benchmark_screen.py > /tmp/bench_screen.log 2>&1 &
@@ -269,7 +269,7 @@ def run_benchmark(args):
         del scan
     # survival of the injected pairs on this sky
     plan_f = out["fast"]["plan"]
-    kr = screen.known_pair_ranks(plan_f, circ, s_min=args.s_min)
+    kr = search.known_pair_ranks(plan_f, circ, s_min=args.s_min)
     print("injected pairs detected (best grid S > %.2f): %d; screen ranks %s (survive when < %d)" % (
         args.s_min, len(kr), [k["rank"] for k in kr], args.partners))
     if args.skip_exhaustive:
@@ -308,7 +308,7 @@ def run_campaign(args):
             scfg = SearchSection(family="general", method="fast", nside_centers=nsc, radius_deg=radii,
                                  separation_deg=tuple(args.sep), screen_partners=args.partners)
             plan = search.make_plan(prepared, scfg, compute)
-            kr = screen.known_pair_ranks(plan, circ, s_min=args.s_min)
+            kr = search.known_pair_ranks(plan, circ, s_min=args.s_min)
             for k in kr:
                 ranks.append(k["rank"])
                 by_radius.extend(k["ranks_by_radius"].values())

@@ -193,6 +193,19 @@ def test_nside_centers_not_a_power_of_two(good, capsys, n):
     run_bad(good, capsys, cfg, "search.nside_centers", str(n))
 
 
+@pytest.mark.parametrize("levels, words", [(-1, ["search.screen_levels", "-1"]), (5, ["search.screen_levels", "5"]),
+                                           (1.5, ["search.screen_levels", "1.5"])])
+def test_screen_levels_out_of_range(good, capsys, levels, words):
+    cfg = config_with(good, "c.yaml", search={"screen_levels": levels})
+    run_bad(good, capsys, cfg, *words)
+
+
+def test_screen_levels_past_the_coarsest_grid(good, capsys):
+    # a grid of nside_centers 4 has only two coarser HEALPix levels (Nside 2 and 1; Gorski et al. 2005, ApJ 622, 759)
+    cfg = config_with(good, "c.yaml", search={"nside_centers": 4, "screen_levels": 3})
+    run_bad(good, capsys, cfg, "search.screen_levels", "3", "at most log2(nside_centers) = 2")
+
+
 def test_lmax_above_3_nside_minus_1(good, capsys):
     cfg = config_with(good, "c.yaml", prepare={"nside": 16, "lmax": 48})
     run_bad(good, capsys, cfg, "prepare.lmax", "47")

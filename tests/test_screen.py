@@ -67,13 +67,14 @@ def _rotation(rng):
     return q
 
 
-def _both(prepared, **kw):
+def _both(prepared, levels=(0,), **kw):
     """Both methods on one sky; the fast one thresholds its score blocks in tiles of 500 columns (so the
-    3072 centres of nside_centers 16 span several tiles) on two threads."""
+    3072 centres of nside_centers 16 span several tiles) on two threads, once per number of coarse levels
+    in ``levels`` (keys 'fast' for 0, 'fast1' for one coarse level, ...)."""
     out = {}
-    for method in ("exhaustive", "fast"):
-        scfg = SearchSection(family="general", method=method, **kw)
-        if method == "fast":
+    for method in ("exhaustive",) + tuple("fast" + (str(L) if L else "") for L in levels):
+        if method.startswith("fast"):
+            scfg = SearchSection(family="general", method="fast", screen_levels=int(method[4:] or 0), **kw)
             monkey = pytest.MonkeyPatch()
             monkey.setattr(screen, "TILE_COLS", 500)
             try:
@@ -82,6 +83,7 @@ def _both(prepared, **kw):
                 monkey.undo()
             assert plan.threads == 2
         else:
+            scfg = SearchSection(family="general", method=method, **kw)
             plan, pool, cand, peaks = search.run_search(prepared, scfg)
         out[method] = (plan, pool, cand)
     return out
@@ -249,7 +251,7 @@ def test_fast_equals_exhaustive_on_a_torus(torus_sky):
     top = _assert_same_top(exh, fast, pred, plan_f.grid_deg)
     # all nine pass the screen; one edge pair sits badly on this coarse grid (grid S 0.67, below the
     # best chance pairs) and is not among the few refined, by either method
-    kr = screen.known_pair_ranks(plan_f, pred, s_min=0.6)
+    kr = search.known_pair_ranks(plan_f, pred, s_min=0.6)
     assert len(kr) == 9 and max(k["rank"] for k in kr) < plan_f.screen_partners
     assert sum(_found(top, c1, c2, a, plan_f.grid_deg) for c1, c2, a in pred) >= 8
 
@@ -282,9 +284,9 @@ def test_fast_equals_exhaustive_on_a_masked_sky(torus_sky):
     mask = (np.abs(90.0 - np.degrees(theta)) >= 10.0).astype(float)
     prepared = types.SimpleNamespace(**{**vars(torus_sky), "mask": mask})
     res = _both(prepared, nside_centers=16, radius_deg=(32.0, 32.0, 1.0), top=10)
+    pred = [p for p in _predicted(_torus_elements((1.2, 1.2, 1.2)), (0, 0, 0)) if p[2] < 40]
     plan_f, pool_f, fast = res["fast"]
     assert plan_f.mask is not None
-    pred = [p for p in _predicted(_torus_elements((1.2, 1.2, 1.2)), (0, 0, 0)) if p[2] < 40]
     top = _assert_same_top(res["exhaustive"][2], fast, pred, plan_f.grid_deg)
     hits = sum(_found(top, c1, c2, a, plan_f.grid_deg) for c1, c2, a in pred)
     assert hits >= 3
@@ -315,7 +317,7 @@ def test_survival_of_injected_pairs():
         scfg = SearchSection(family="general", method="fast", nside_centers=16, radius_deg=(20.0, 60.0, 2.0),
                              screen_partners=16)
         plan = search.make_plan(prepared, scfg)
-        kr = screen.known_pair_ranks(plan, _predicted(els, obs, rot), s_min=0.6)
+        kr = search.known_pair_ranks(plan, _predicted(els, obs, rot), s_min=0.6)
         ranks += [k["rank"] for k in kr]
     assert len(ranks) >= 15
     assert screen.survival_rate(ranks, 16) >= 0.99
@@ -337,3 +339,186 @@ def test_reduced_screen_vectors_keep_inner_products_of_their_span():
     ref /= np.linalg.norm(ref, axis=1, keepdims=True)
     np.testing.assert_allclose(G3 @ G3.T, ref @ ref.T, atol=1e-5)
     assert screen.reduce_features(F, dim=0) is F and screen.reduce_features(F, dim=40) is F
+
+
+# --------------------------------------------------------------------------- coarse to fine
+def test_coarse_grid_is_the_nested_parent_grid():
+    # HEALPix nesting (Gorski et al. 2005, ApJ 622, 759): every pixel of Nside n lies inside one pixel of
+    # Nside n/2^L, which has 4^L such children; healpy's vec2pix at the coarse Nside finds the parent.  A
+    # coarse centre covers its children and every fine centre within the cover radius.
+    for nside, levels in ((16, 1), (16, 2), (8, 3)):
+        coarse, parent, cover, radius = screen.coarse_grid(nside, levels)
+        fine = rings.center_grid(nside)
+        n, nc = fine.shape[0], nside >> levels
+        assert coarse.shape == (hp.nside2npix(nc), 3)
+        assert np.array_equal(parent, hp.vec2pix(nc, fine[:, 0], fine[:, 1], fine[:, 2]))
+        child_angle = np.arccos(np.clip(np.sum(fine * coarse[parent], axis=1), -1, 1))
+        assert radius == pytest.approx(screen.COVER_FACTOR * child_angle.max())
+        D = fine @ coarse.T
+        for a in range(coarse.shape[0]):
+            got = set(cover[a][cover[a] < n].tolist())
+            want = set(np.flatnonzero(D[:, a] >= math.cos(radius) - 1e-12).tolist()) | set(np.flatnonzero(parent == a).tolist())
+            assert got == want, a
+        assert np.all(cover[cover < n].size >= n)
+
+
+def test_widened_range_holds_every_allowed_pair_s_parents():
+    # triangle inequality on the sphere (common practice, no source): parents lie within the largest
+    # child-parent angle of their children, so a fine pair's parents are within twice it of its separation
+    # cover radius of the coarse centres: the coarse pairs covering an allowed fine pair are in range
+    nside, levels = 16, 1
+    coarse, parent, cover, radius = screen.coarse_grid(nside, levels)
+    fine = rings.center_grid(nside)
+    n = fine.shape[0]
+    a_of = [np.flatnonzero(np.any(cover == i, axis=1)) for i in range(n)]
+    D = fine @ fine.T
+    for sep in ((10.0, 180.0), (30.0, 60.0), (100.0, 170.0)):
+        sep_cos = (math.cos(math.radians(sep[1])), math.cos(math.radians(sep[0])))
+        lo, hi = screen.widened_sep_cos(sep_cos, 2 * radius)
+        i, j = np.nonzero((D >= sep_cos[0]) & (D <= sep_cos[1]))
+        for q in range(0, i.size, 97):
+            dc = coarse[a_of[i[q]]] @ coarse[a_of[j[q]]].T
+            assert np.all((dc >= lo - 1e-12) & (dc <= hi + 1e-12))
+        assert lo < sep_cos[0] or sep[1] == 180.0
+
+
+def _brute_hierarchy(F, cen, Fc, cen_c, cover, radius, sep_cos, K, use, use_c):
+    """The coarse-to-fine rule written out in float64 (common practice, no source): coarse centres keep
+    their K best coarse partners in the widened range (either end); a fine centre's candidates are the
+    fine centres covered by the kept partners of the coarse centres covering it, and by those coarse
+    centres; each usable fine centre keeps its K best usable candidates in the separation range; either
+    end keeps a pair."""
+    kept = _brute_top(Fc, cen_c, screen.widened_sep_cos(sep_cos, 2 * radius), K, use_c)
+    nc, n = cen_c.shape[0], cen.shape[0]
+    adj = [{a} for a in range(nc)]
+    for a, b in kept:
+        adj[a].add(b); adj[b].add(a)
+    C = F.astype(np.float64) @ F.T.astype(np.float64)
+    D = cen @ cen.T
+    ref = set()
+    for i in np.flatnonzero(use):
+        over = np.flatnonzero(np.any(cover == i, axis=1))
+        cand = np.unique(np.concatenate([cover[b] for a in over for b in adj[a]]))
+        cand = cand[cand < n]
+        cand = cand[(cand != i) & use[cand] & (D[i, cand] >= sep_cos[0] - 1e-12) & (D[i, cand] <= sep_cos[1] + 1e-12)]
+        for j in cand[np.lexsort((cand, -C[i, cand]))[:K]]:
+            ref.add((min(i, j), max(i, j)))
+    return ref
+
+
+def test_hierarchical_pairs_equal_the_rule_written_out():
+    rng = np.random.default_rng(9)
+    nside = 8
+    coarse, parent, cover, radius = screen.coarse_grid(nside, 1)
+    cen = rings.center_grid(nside)
+    n, nc = cen.shape[0], coarse.shape[0]
+    for sep, K, threads, mem in (((10.0, 180.0), 6, 1, 4.0), ((30.0, 90.0), 12, 2, 4.0), ((10.0, 180.0), 3, 2, 1e-4)):
+        F = rng.normal(size=(n, 16)).astype(np.float32)
+        F /= np.linalg.norm(F, axis=1, keepdims=True)
+        Fc = rng.normal(size=(nc, 16)).astype(np.float32)
+        Fc /= np.linalg.norm(Fc, axis=1, keepdims=True)
+        use = rng.random(n) > 0.1
+        use_c = np.concatenate([use, [False]])[cover].any(axis=1)
+        sep_cos = (math.cos(math.radians(sep[1])), math.cos(math.radians(sep[0])))
+        ref = _brute_hierarchy(F, cen, Fc, coarse, cover, radius, sep_cos, K, use, use_c)
+        i, j = screen.hierarchical_pairs(F, cen, use, Fc, coarse, use_c, cover, radius, sep_cos, K, mem, threads)
+        assert np.all(i < j) and use[i].all() and use[j].all()
+        assert set(zip(i.tolist(), j.tolist())) == ref
+        # the survivors are a subset of the exhaustive pair set (same inclusive range test)
+        d = np.sum(cen[i] * cen[j], axis=1)
+        assert np.all((d >= sep_cos[0] - 1e-12) & (d <= sep_cos[1] + 1e-12))
+
+
+def test_hierarchy_keeping_every_coarse_partner_is_the_single_level_screen():
+    # with K at least the number of coarse centres every allowed fine pair is a candidate, and the rule
+    # reduces to the single-level one (each centre's K best partners, written out in _brute_top)
+    rng = np.random.default_rng(10)
+    nside = 8
+    coarse, parent, cover, radius = screen.coarse_grid(nside, 1)
+    cen = rings.center_grid(nside)
+    F = rng.normal(size=(cen.shape[0], 16)).astype(np.float32)
+    F /= np.linalg.norm(F, axis=1, keepdims=True)
+    Fc = rng.normal(size=(coarse.shape[0], 16)).astype(np.float32)
+    use = np.ones(cen.shape[0], bool)
+    sep_cos = (math.cos(math.radians(170.0)), math.cos(math.radians(20.0)))
+    K = coarse.shape[0]
+    i, j = screen.hierarchical_pairs(F, cen, use, Fc, coarse, np.ones(coarse.shape[0], bool), cover, radius, sep_cos, K)
+    assert set(zip(i.tolist(), j.tolist())) == _brute_top(F, cen, sep_cos, K, use)
+
+
+# The coarse-to-fine screen against the exhaustive search at nside_centers 32 (coarse grid Nside 16, 3.7 deg;
+# a coarse grid of Nside 8, 7.3 deg, is too coarse for these 3 deg-beam skies: measured, the fast search then
+# loses grid pairs of S 0.6-0.7 that the exhaustive one lists, see twinring.screen).  Narrow separation
+# windows about the predicted pairs keep the exhaustive search small.
+def test_hierarchical_fast_equals_exhaustive_on_a_torus(torus_sky):
+    # cubic torus, side 1.2: face pairs at 53.1 deg and edge pairs at 31.9 deg, back to back (CSS 1998)
+    res = _both(torus_sky, levels=(0, 1), nside_centers=32, radius_deg=(32.0, 53.0, 21.0),
+                separation_deg=(165.0, 180.0), top=12, screen_partners=16)
+    plan_e, pool_e, exh = res["exhaustive"]
+    pred = _predicted(_torus_elements((1.2, 1.2, 1.2)), (0, 0, 0))
+    top = _assert_same_top(exh, res["fast"][2], pred, plan_e.grid_deg)
+    plan_h, pool_h, hier = res["fast1"]
+    assert plan_h.screen_levels == 1 and res["fast"][0].screen_levels == 0
+    assert pool_h.pairs_scanned < 0.5 * pool_e.pairs_scanned
+    assert _assert_same_top(exh, hier, pred, plan_h.grid_deg) == top
+    kr = search.known_pair_ranks(plan_h, pred, s_min=0.6)
+    assert len(kr) == 9
+    assert all(k["hier_rank"][16] is not None and k["hier_rank"][16] < 16 for k in kr)
+
+
+def test_hierarchical_fast_equals_exhaustive_on_a_half_turn_space_off_axis():
+    # E2 off its axis: the half turn pairs circles of 57.4 deg 95.9 deg apart (Riazuelo et al. 2004, PRD 69,
+    # 103518; radii from CSS 1998)
+    lengths, obs = (2.5, 2.5, 1.6), (0.3, 0.2, 0.1)
+    m = periodic_field_on_sphere(lengths, 64, kmax=140, seed=12, observer=obs, half_turn=True)
+    prepared = prepared_from_map(m, 128, 3.0)
+    pred = [p for p in _predicted(_half_turn_elements(lengths), obs) if 50 < p[2] < 60]
+    assert len(pred) == 1 and abs(rings.separation_deg(pred[0][0], pred[0][1]) - 95.9) < 0.1
+    res = _both(prepared, levels=(1,), nside_centers=32, radius_deg=(57.0, 57.0, 1.0), separation_deg=(94.0, 98.0),
+                top=5, screen_partners=16)
+    plan_h, pool_h, hier = res["fast1"]
+    assert pool_h.pairs_scanned < 0.5 * res["exhaustive"][1].pairs_scanned
+    top = _assert_same_top(res["exhaustive"][2], hier, pred, plan_h.grid_deg)
+    assert _found(top, *pred[0], plan_h.grid_deg)
+
+
+def test_hierarchical_fast_equals_exhaustive_on_a_masked_sky(torus_sky):
+    # |b| < 10 deg masked (Aurich et al., astro-ph/0511726): rings about coarse and fine centres alike are
+    # masked, unusable fine rings take part in no pair; the edge pairs clear of the band stay detectable
+    nside = 64
+    theta, _ = hp.pix2ang(nside, np.arange(hp.nside2npix(nside)))
+    mask = (np.abs(90.0 - np.degrees(theta)) >= 10.0).astype(float)
+    prepared = types.SimpleNamespace(**{**vars(torus_sky), "mask": mask})
+    res = _both(prepared, levels=(1,), nside_centers=32, radius_deg=(32.0, 32.0, 1.0), separation_deg=(165.0, 180.0),
+                top=10, screen_partners=16)
+    plan_h, pool_h, hier = res["fast1"]
+    assert plan_h.mask is not None
+    pred = [p for p in _predicted(_torus_elements((1.2, 1.2, 1.2)), (0, 0, 0)) if p[2] < 40]
+    top = _assert_same_top(res["exhaustive"][2], hier, pred, plan_h.grid_deg)
+    assert sum(_found(top, c1, c2, a, plan_h.grid_deg) for c1, c2, a in pred) >= 3
+
+
+def test_screen_defaults_follow_the_grid():
+    # null keys: one coarse level and K = 16 from nside_centers 64 on (where REFERENCE_CAMPAIGN_HIERARCHY
+    # measured survival), the single-level screen with K = 64 below; explicit keys win
+    from twinring.config import config_from_dict
+
+    def setup(**search):
+        cfg = config_from_dict({"search": {"family": "general", "method": "fast", **search}})
+        return cfg.search.screen_setup()
+
+    assert setup(nside_centers=64) == (16, 1)
+    assert setup(nside_centers=128) == (16, 1)
+    assert setup(nside_centers=32) == (64, 0)
+    assert setup(nside_centers=64, screen_levels=0) == (16, 0)
+    assert setup(nside_centers=64, screen_partners=64, screen_levels=2) == (64, 2)
+    assert setup(nside_centers=16, screen_levels=1) == (64, 1)
+    ref = screen.REFERENCE_CAMPAIGN_HIERARCHY
+    worst = max(r for r in ref["ranks"][16] if r is not None)
+    assert worst < 16 and ref["nside_centers"] == 64
+    d = screen.describe(64, 16, 1)
+    assert d["levels"] == 1 and d["screen_survival"] >= 0.99
+    n = sum(ref["ranks"][16].values())
+    assert d["screen_survival_basis"].startswith(f"{n} injected pairs") and "K = 16" in d["screen_survival_basis"]
+    # a K below the worst measured rank is reported as losing pairs
+    assert screen.describe(64, worst, 1)["screen_survival"] < 1.0
