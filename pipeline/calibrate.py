@@ -304,13 +304,8 @@ def file_spectrum(path, lmax) -> np.ndarray:
                              "allowed: columns l (or ell) and C_l (or cl, tt)")
         ell, cl = np.asarray(t[lk], float), np.asarray(t[ck], float)
     else:
-        try:
-            arr = np.loadtxt(p, ndmin=2)
-        except Exception as exc:
-            raise InputError(f"{p}: calibrate.spectrum_file is not a numeric text table ({exc.__class__.__name__}); "
-                             "allowed: two columns l, C_l [uK^2]")
-        if arr.shape[1] < 2:
-            raise InputError(f"{p}: calibrate.spectrum_file has {arr.shape[1]} column; allowed: two columns l, C_l")
+        arr = prep_mod.text_columns(p, "calibrate.spectrum_file", 2, None,
+                                    "columns l, C_l [uK^2] (any further columns are ignored)")
         ell, cl = arr[:, 0], arr[:, 1]
     if not np.all(np.isfinite(cl)) or np.any(cl < 0):
         raise InputError(f"{p}: calibrate.spectrum_file has negative or non-finite C_l; allowed: C_l >= 0 in uK^2")

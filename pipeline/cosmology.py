@@ -192,19 +192,25 @@ class Transfer:
         return self.tcmb_uk**2 * 4 * np.pi * np.trapezoid(self.primordial(q) * d**2, np.log(q), axis=1)
 
 
-@functools.lru_cache(maxsize=4)
-def _transfer(params, lmax, kmax_chi):
+def scalar_transfer(c, lmax, max_eta_k):
+    """CAMB's results and scalar CMB transfer data for cosmology ``c``, with the multipoles
+    l = 2..lmax and their rows in the transfer data (CAMB samples l sparsely unless asked not to)."""
     import camb
 
-    c = _Defaults(*params)
-    p = camb_params(c, lmax=lmax, max_eta_k=1.15 * kmax_chi + 50.0)
-    res = camb.get_transfer_functions(p)
+    res = camb.get_transfer_functions(camb_params(c, lmax=lmax, max_eta_k=max_eta_k))
     td = res.get_cmb_transfer_data("scalar")
     ells = np.asarray(td.L)
     want = np.arange(2, lmax + 1)
     idx = np.searchsorted(ells, want)
     if np.any(idx >= ells.size) or np.any(ells[np.minimum(idx, ells.size - 1)] != want):
         raise RuntimeError(f"CAMB transfer data lack some multipoles up to {lmax}")
+    return res, td, want, idx
+
+
+@functools.lru_cache(maxsize=4)
+def _transfer(params, lmax, kmax_chi):
+    c = _Defaults(*params)
+    res, td, want, idx = scalar_transfer(c, lmax, 1.15 * kmax_chi + 50.0)
     chi = float(res.comoving_radial_distance(c.z_ls))
     return Transfer(q=np.asarray(td.q, float).copy(), ells=want, delta=np.asarray(td.delta_p_l_k[0][idx], float).copy(),
                     chi_mpc=chi, a_s=c.a_s, n_s=c.n_s, pivot_mpc=c.pivot_mpc, tcmb_uk=c.tcmb * 1e6)

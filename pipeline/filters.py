@@ -99,18 +99,11 @@ class SourceSplit:
 
 def _split_transfers(lmax, cosmo, q_stride=1):
     """CAMB total, Doppler and ISW transfer functions Delta_l(q) (dT/T per unit curvature)."""
-    import camb
     from scipy.special import spherical_jn
     from . import cosmology
 
-    params = cosmology._params(cosmo)
-    c = cosmology._Defaults(*params)
-    p = cosmology.camb_params(c, lmax=lmax, max_eta_k=8.0 * lmax + 50.0)
-    res = camb.get_transfer_functions(p)
-    td = res.get_cmb_transfer_data("scalar")
-    ells = np.asarray(td.L)
-    want = np.arange(2, lmax + 1)
-    idx = np.searchsorted(ells, want)
+    c = cosmology._Defaults(*cosmology._params(cosmo))
+    res, td, want, idx = cosmology.scalar_transfer(c, lmax, 8.0 * lmax + 50.0)
     q = np.asarray(td.q, float)[::q_stride]
     total = np.asarray(td.delta_p_l_k[0], float)[idx][:, ::q_stride]
     tau0 = float(res.tau0)

@@ -152,6 +152,19 @@ def beam_and_highpass(lmax, fwhm_deg, lmin=0, input_bl=None):
 MAX_SHARPEN = 1.1       # largest allowed target / input window (the prepared beam may not sharpen the input)
 
 
+def text_columns(path, what, least, most, allowed) -> np.ndarray:
+    """A numeric text table (numpy.loadtxt, 2-d) with ``least`` to ``most`` columns (``most`` None: any
+    more are ignored by the caller); a one-line InputError naming the file and the key ``what``
+    otherwise."""
+    try:
+        arr = np.loadtxt(path, ndmin=2)
+    except Exception as exc:
+        raise InputError(f"{path}: {what} is not a numeric text table ({exc.__class__.__name__}); allowed: {allowed}")
+    if arr.shape[1] < least or (most is not None and arr.shape[1] > most):
+        raise InputError(f"{path}: {what} has {arr.shape[1]} column(s); allowed: {allowed}")
+    return arr
+
+
 def read_beam(path, lmax) -> np.ndarray:
     """A beam transfer function B_l (l = 0..lmax) from a FITS table or a text file.
 
@@ -203,17 +216,11 @@ def read_beam(path, lmax) -> np.ndarray:
             raise InputError(f"{p}: {what} is not a readable B_l FITS table ({exc.__class__.__name__}: "
                              f"{' '.join(str(exc).split())}); allowed: a FITS table with a B_l column")
     else:
-        try:
-            arr = np.loadtxt(p, ndmin=2)
-        except Exception as exc:
-            raise InputError(f"{p}: {what} is not a numeric text table ({exc.__class__.__name__}); "
-                             "allowed: one column B_l (l = 0, 1, ...) or two columns l, B_l")
+        arr = text_columns(p, what, 1, 2, "one column B_l (l = 0, 1, ...) or two columns l, B_l")
         if arr.shape[1] == 1:
             bl = arr[:, 0]
-        elif arr.shape[1] == 2:
-            ell, bl = arr[:, 0], arr[:, 1]
         else:
-            raise InputError(f"{p}: {what} has {arr.shape[1]} columns; allowed: one column B_l or two columns l, B_l")
+            ell, bl = arr[:, 0], arr[:, 1]
     if ell is not None:
         full = np.full(int(max(lmax, np.max(ell))) + 1, np.nan)
         li = np.round(ell).astype(int)

@@ -114,6 +114,14 @@ def test_file_spectrum(tmp_path):
     np.savetxt(tmp_path / "short.txt", np.c_[ell[:20], cl[:20]])
     with pytest.raises(InputError, match="lacks l = 20"):
         cal.file_spectrum(tmp_path / "short.txt", LMAX)
+    np.savetxt(tmp_path / "camb.txt", np.c_[ell, cl, 0.1 * cl, 0.01 * cl])    # CAMB's text layout: l, TT, EE, ...
+    assert np.allclose(cal.file_spectrum(tmp_path / "camb.txt", LMAX), cl)
+    np.savetxt(tmp_path / "one.txt", cl)
+    with pytest.raises(InputError, match=r"one.txt: calibrate.spectrum_file has 1 column\(s\); allowed: columns l, C_l"):
+        cal.file_spectrum(tmp_path / "one.txt", LMAX)
+    (tmp_path / "words.txt").write_text("l C_l\nx y\n")
+    with pytest.raises(InputError, match="words.txt: calibrate.spectrum_file is not a numeric text table"):
+        cal.file_spectrum(tmp_path / "words.txt", LMAX)
     with pytest.raises(InputError, match="spectrum_file"):
         config_from_dict({"calibrate": {"spectrum": "file"}})
     with pytest.raises(InputError, match="false_alarm"):

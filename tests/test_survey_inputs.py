@@ -147,6 +147,9 @@ def test_beam_file_round_trip_and_same_as_fwhm(tmp_path):
     np.savetxt(tmp_path / "short.txt", bl[:10])
     with pytest.raises(InputError, match="input_beam"):
         prepare.read_beam(tmp_path / "short.txt", lmax)
+    np.savetxt(tmp_path / "three.txt", np.c_[np.arange(bl.size), bl, bl])
+    with pytest.raises(InputError, match=r"three.txt: prepare.input_beam has 3 column\(s\); allowed: one column"):
+        prepare.read_beam(tmp_path / "three.txt", lmax)
     np.savetxt(tmp_path / "scaled.txt", 2 * bl)
     with pytest.raises(InputError, match="B_0"):
         prepare.read_beam(tmp_path / "scaled.txt", lmax)

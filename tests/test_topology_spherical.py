@@ -392,12 +392,16 @@ def test_istar_sachs_wolfe_sky_matches_predicted_pairs(tmp_path):
     # Noiseless invariant SW sky of I* (omega_k = -0.05, Nside 32, lmax 48, 4 deg beam): S close to 1 on the
     # six pairs at 36 degrees and the others, at the predicted twist; far lower on unrelated circles.
     import healpy as hp
+    from astropy.io import fits
 
     from twinring.topology.stages import run_sky
 
     cfg = config_from_dict({"topology": {"space": "I*"}, "cosmology": {"omega_k": -0.05},
                             "sky": {"nside": 32, "lmax": 48, "fwhm_deg": 4.0, "seed": 1, "lmin": 0}})
-    m = hp.read_map(str(run_sky(cfg, tmp_path)["sky"]))
+    paths = run_sky(cfg, tmp_path)
+    m = hp.read_map(str(paths["sky"]))
+    h = fits.getheader(paths["sky"], 1)          # the sky's provenance cards: its own, then the common ones
+    assert (h["SPACE"], h["GORDER"], h["SEED"], h["LMAX"], h["LMIN"]) == ("I*", 120, 1, 48, 0)
     alm = hp.map2alm(m, lmax=48, iter=3)
     rows = S.predict_pairs(S.spherical_from_config(cfg.topology, cfg.cosmology))
     assert len(rows) == 22

@@ -87,10 +87,42 @@ def run_predict(cfg, out_dir) -> Path:
     return path
 
 
-def run_sky(cfg, out_dir) -> dict:
-    """Write ``sky.fits`` (uK, RING) and, with ``sky.mask: demo``, ``mask.fits``; return their paths."""
+def _write_sky(cfg, out_dir, m, basics, specific, elapsed) -> dict:
+    """Write ``sky.fits`` with the space's own header cards ``specific`` followed by the ones every sky
+    carries (``basics``: the sky recipe's seed, band limits, beam, noise and nside), and, with
+    ``sky.mask: demo``, ``mask.fits``; return their paths."""
     from .. import skymap
     from ..cosmology import chi_ls_gpc, t0_uk
+
+    header = list(specific) + [
+        ("SEED", basics.seed, "numpy SeedSequence seed"),
+        ("LMAX", basics.lmax, "band limit of the map"),
+        ("LMIN", basics.lmin, "multipoles below are zero"),
+        ("FWHM_DEG", basics.fwhm_deg, "Gaussian beam FWHM, deg"),
+        ("NOISE", basics.noise_uk_arcmin, "white noise, uK-arcmin"),
+        ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
+        ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
+        ("SKYSECS", round(elapsed, 3), "generation time, s"),
+    ]
+    out = Path(out_dir)
+    paths = {"sky": skymap.write_map(out / "sky.fits", m, extra_header=header, provenance=provenance(cfg, stage="sky"),
+                                     column_names=["TEMPERATURE"], column_units="uK")}
+    s = cfg.sky
+    if s.mask == "demo":
+        mask = mask_for_seed(basics.nside, basics.seed, s.mask_band_deg, s.mask_holes, s.mask_hole_deg)
+        mhead = [("MASKKIND", "demo", "galactic-like band plus round holes; 1 = valid"),
+                 ("BAND_DEG", s.mask_band_deg, "band half-width at lon 180, deg"),
+                 ("NHOLES", s.mask_holes, "round holes"),
+                 ("HOLE_DEG", s.mask_hole_deg, "hole radius, deg"),
+                 ("SEED", basics.seed, "numpy SeedSequence seed (third stream)"),
+                 ("FSKY", float(np.mean(mask)), "valid fraction")]
+        paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=mhead, provenance=provenance(
+            cfg, stage="sky-mask"), column_names=["MASK"], column_units="")
+    return paths
+
+
+def run_sky(cfg, out_dir) -> dict:
+    """Write ``sky.fits`` (uK, RING) and, with ``sky.mask: demo``, ``mask.fits``; return their paths."""
     from . import spherical
 
     if spherical.is_spherical_name(cfg.topology.space):
@@ -104,7 +136,7 @@ def run_sky(cfg, out_dir) -> dict:
     elapsed = time.perf_counter() - t_start
     cut = mode_cut(recipe, cfg.cosmology)
     t = cfg.topology
-    header = [
+    return _write_sky(cfg, out_dir, m, recipe, [
         ("SPACE", space.name, "flat space (Riazuelo et al. 2004 numbering)"),
         ("LENGTHS", json.dumps(list(t.lengths)), f"generator lengths, units {t.units}"),
         ("LUNITS", t.units, "units of LENGTHS and OBSERVER"),
@@ -112,42 +144,17 @@ def run_sky(cfg, out_dir) -> dict:
         ("OBSERVER", json.dumps(list(t.observer)), "observer, domain frame"),
         ("EULER", json.dumps(list(t.euler_deg)), "domain rotation z-y-z, deg"),
         ("PHYSICS", recipe.physics, "sw: Sachs-Wolfe thin shell; full: CAMB transfer"),
-        ("SEED", recipe.seed, "numpy SeedSequence seed"),
-        ("LMAX", recipe.lmax, "band limit of the map"),
-        ("LMIN", recipe.lmin, "multipoles below are zero"),
-        ("FWHM_DEG", recipe.fwhm_deg, "Gaussian beam FWHM, deg"),
-        ("NOISE", recipe.noise_uk_arcmin, "white noise, uK-arcmin"),
         ("KMAXFAC", round(cut.factor, 4), "modes kept to |k| chi = KMAXFAC * LMAX"),
         ("KMAXAUTO", cut.automatic, "KMAXFAC chosen by convergence of the C_l integral"),
         ("TAILMAX", round(cut.worst_omitted, 4), "largest C_l fraction beyond the cut, put back"),
         ("OPENLEN", recipe.open_length, "stand-in period of open directions, chi"),
-        ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
-        ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
         ("HOLONOM", space.holonomy_order(), "holonomy group order"),
-        ("SKYSECS", round(elapsed, 3), "generation time, s"),
-    ]
-    out = Path(out_dir)
-    prov = provenance(cfg, stage="sky")
-    paths = {"sky": skymap.write_map(out / "sky.fits", m, extra_header=header, provenance=prov,
-                                     column_names=["TEMPERATURE"], column_units="uK")}
-    if cfg.sky.mask == "demo":
-        mask = mask_for_seed(recipe.nside, recipe.seed, cfg.sky.mask_band_deg, cfg.sky.mask_holes,
-                             cfg.sky.mask_hole_deg)
-        mhead = [("MASKKIND", "demo", "galactic-like band plus round holes; 1 = valid"),
-                 ("BAND_DEG", cfg.sky.mask_band_deg, "band half-width at lon 180, deg"),
-                 ("NHOLES", cfg.sky.mask_holes, "round holes"),
-                 ("HOLE_DEG", cfg.sky.mask_hole_deg, "hole radius, deg"),
-                 ("SEED", recipe.seed, "numpy SeedSequence seed (third stream)"),
-                 ("FSKY", float(np.mean(mask)), "valid fraction")]
-        paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=mhead, provenance=provenance(
-            cfg, stage="sky-mask"), column_names=["MASK"], column_units="")
-    return paths
+    ], elapsed)
 
 
 def _run_sky_spherical(cfg, out_dir) -> dict:
     """Sachs-Wolfe sky of a spherical space (twinring.topology.skies_spherical)."""
-    from .. import skymap
-    from ..cosmology import chi_ls_gpc, curvature_radius_gpc, t0_uk
+    from ..cosmology import curvature_radius_gpc
     from . import skies_spherical, spherical
 
     space = spherical.spherical_from_config(cfg.topology, cfg.cosmology, cfg.source)
@@ -164,7 +171,7 @@ def _run_sky_spherical(cfg, out_dir) -> dict:
     except ValueError as exc:
         raise InputError(f"{cfg.source}: sky.lmax: found {s.lmax}; allowed: a band limit this group can reach ({exc})")
     elapsed = time.perf_counter() - t_start
-    header = [
+    return _write_sky(cfg, out_dir, m, s, [
         ("SPACE", space.name, "spherical space S3/Gamma"),
         ("GORDER", space.order, "group order"),
         ("OMEGA_K", cfg.cosmology.omega_k, "curvature density"),
@@ -175,25 +182,7 @@ def _run_sky_spherical(cfg, out_dir) -> dict:
         ("PHYSICS", "sw", "Sachs-Wolfe, invariant S3 modes n = 3..NMAX"),
         ("NMAX", info["n_max"], "highest S3 eigenspace n (eigenvalue n^2 - 1)"),
         ("NMODES", info["invariant_modes"], "invariant modes used"),
-        ("SEED", s.seed, "numpy SeedSequence seed"),
-        ("LMAX", s.lmax, "band limit of the map"),
-        ("LMIN", s.lmin, "multipoles below are zero"),
-        ("FWHM_DEG", s.fwhm_deg, "Gaussian beam FWHM, deg"),
-        ("NOISE", s.noise_uk_arcmin, "white noise, uK-arcmin"),
-        ("CHI_GPC", round(chi_ls_gpc(cfg.cosmology), 6), "distance to last scattering, Gpc"),
-        ("TCMB_UK", t0_uk(cfg.cosmology), "CMB temperature, uK"),
-        ("SKYSECS", round(elapsed, 3), "generation time, s"),
-    ]
-    out = Path(out_dir)
-    paths = {"sky": skymap.write_map(out / "sky.fits", m, extra_header=header, provenance=provenance(cfg, stage="sky"),
-                                     column_names=["TEMPERATURE"], column_units="uK")}
-    if s.mask == "demo":
-        mask = mask_for_seed(s.nside, s.seed, s.mask_band_deg, s.mask_holes, s.mask_hole_deg)
-        paths["mask"] = skymap.write_map(out / "mask.fits", mask, extra_header=[
-            ("MASKKIND", "demo", "galactic-like band plus round holes; 1 = valid"),
-            ("FSKY", float(np.mean(mask)), "valid fraction")], provenance=provenance(cfg, stage="sky-mask"),
-            column_names=["MASK"], column_units="")
-    return paths
+    ], elapsed)
 
 
 # --------------------------------------------------------------------------- command-line handlers
