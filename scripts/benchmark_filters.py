@@ -187,7 +187,9 @@ def main(realizations=29, sims=100, names=tuple(FILTERS), radii=RADII):
 def reread(work):
     """The paired report and the alpha_min line of a finished run directory."""
     work = Path(work)
-    dirs = {p.name: p for p in sorted(work.iterdir()) if p.is_dir() and (p / "recovery.ecsv").exists()}
+    found = {p.name: p for p in work.iterdir() if p.is_dir() and (p / "recovery.ecsv").exists()}
+    order = list(FILTERS)
+    dirs = {n: found[n] for n in sorted(found, key=lambda n: (order.index(n) if n in order else len(order), n))}
     if not dirs:
         sys.exit(f"{work}: no finished filter runs (directories with recovery.ecsv) found")
     report_paired(dirs)
