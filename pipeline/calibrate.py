@@ -411,7 +411,7 @@ def grid_peaks(prepared, scfg, listed=None, key="", compute=None, ring_filter=No
     plan = search_mod.make_plan(prepared, scfg, compute, listed, key=key, ring_filter=ring_filter)
     results = [search_mod.scan_chunk(plan, c) for c in plan.chunk_ids()]
     pool = search_mod.combine(plan, results)
-    search_mod._RING_CACHE.clear()
+    search_mod.clear_ring_caches()
     return plan, pool
 
 

@@ -189,18 +189,30 @@ def _block_pairs(plan: SearchPlan, ib, ir=None):
 _RING_CACHE: dict = {}
 
 
-def ring_set(plan: SearchPlan, ir):
-    """Spectra of the rings about every centre at radius index ``ir`` (cached per process)."""
-    hit = _RING_CACHE.get(ir)
-    if hit is not None and hit[0] is plan:   # the very same plan object (ids of dead objects are reused)
+def _cached_rings(cache, plan: SearchPlan, ir, centres):
+    """Spectra of the rings about ``centres`` at radius index ``ir``, kept in ``cache`` for the very same
+    plan object (ids of dead objects are reused); one radius at a time per process bounds memory."""
+    hit = cache.get(ir)
+    if hit is not None and hit[0] is plan:
         return hit[1]
     alpha = math.radians(plan.radii_deg[ir])
-    vals, wts = rings.sample_rings(plan.alm, plan.lmax, plan.centres, alpha, plan.nsamp[ir], None, plan.mask,
+    vals, wts = rings.sample_rings(plan.alm, plan.lmax, centres, alpha, plan.nsamp[ir], None, plan.mask,
                                    nthreads=plan.threads)
     spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
-    _RING_CACHE.clear()   # one radius at a time per process bounds memory
-    _RING_CACHE[ir] = (plan, spec)
+    cache.clear()
+    cache[ir] = (plan, spec)
     return spec
+
+
+def clear_ring_caches():
+    """Forget the kept rings (fine and coarse), e.g. after a simulation's search."""
+    _RING_CACHE.clear()
+    _COARSE_CACHE.clear()
+
+
+def ring_set(plan: SearchPlan, ir):
+    """Spectra of the rings about every centre at radius index ``ir`` (cached per process)."""
+    return _cached_rings(_RING_CACHE, plan, ir, plan.centres)
 
 
 _COARSE_CACHE: dict = {}
@@ -209,17 +221,8 @@ _COARSE_CACHE: dict = {}
 def coarse_ring_set(plan: SearchPlan, ir):
     """Spectra of the rings at radius index ``ir`` about the centres of the grid ``plan.screen_levels``
     HEALPix levels coarser than the plan's (the coarse stage of the screen; cached per process)."""
-    hit = _COARSE_CACHE.get(ir)
-    if hit is not None and hit[0] is plan:
-        return hit[1]
     nside = hp.npix2nside(plan.centres.shape[0]) >> plan.screen_levels
-    alpha = math.radians(plan.radii_deg[ir])
-    vals, wts = rings.sample_rings(plan.alm, plan.lmax, rings.center_grid(nside), alpha, plan.nsamp[ir], None,
-                                   plan.mask, nthreads=plan.threads)
-    spec = ring_spectra(vals, wts, plan.weights(plan.radii_deg[ir], plan.nsamp[ir]))
-    _COARSE_CACHE.clear()
-    _COARSE_CACHE[ir] = (plan, spec)
-    return spec
+    return _cached_rings(_COARSE_CACHE, plan, ir, rings.center_grid(nside))
 
 
 # --------------------------------------------------------------------------- survival of known pairs

@@ -124,8 +124,7 @@ def project_general64(prepared, compute, partners, levels, sample_radii):
     radii = np.arange(10.0, 90.5, 1.0)
     xs = np.array([x[0] for x in rows])
     per = {k: np.interp(radii, xs, [x[q] for x in rows]) for q, k in ((1, "rings"), (2, "screen"), (3, "exact"))}
-    search._RING_CACHE.clear()
-    search._COARSE_CACHE.clear()
+    search.clear_ring_caches()
     return {k: float(v.sum()) for k, v in per.items()}, t_once, rows, plan
 
 
@@ -165,8 +164,7 @@ def survival(prepared, circ, n_skies, seed):
         plan = search.make_plan(p, scfg)
         kr = search.known_pair_ranks(plan, c, s_min=0.6)
         ranks += [k["hier_rank"][plan.screen_partners] if plan.screen_levels else k["rank"] for k in kr]
-        search._RING_CACHE.clear()
-        search._COARSE_CACHE.clear()
+        search.clear_ring_caches()
     return ranks, plan.screen_partners, plan.screen_levels
 
 
@@ -197,7 +195,7 @@ def main(argv=None):
     for q, row in enumerate(cand[:3]):
         print(f"  #{q + 1}: radius {row['radius_deg']:.2f}, separation {row['separation_deg']:.1f}, "
               f"flip {bool(row['flip'])}, s {row['s']:.3f}")
-    search._RING_CACHE.clear()
+    search.clear_ring_caches()
 
     print("projection to nside_centers 64, radii 10-90 deg step 1 (81 radii):", flush=True)
     figures = {}

@@ -60,8 +60,7 @@ def main(argv=None):
               f"coarse-to-fine ranks (K: ranks) "
               f"{ {k: [x['hier_rank'][k] for x in kr] for k in args.partners} }; {time.perf_counter() - t:.0f} s; "
               "load %.2f" % os.getloadavg()[0], flush=True)
-        search._RING_CACHE.clear()
-        search._COARSE_CACHE.clear()
+        search.clear_ring_caches()
     n = len(single)
     print(f"{n} detected pairs on {2 * args.skies} skies, nside_centers {args.nside_centers}, radii 10-90 deg step 1")
     for k in args.partners:

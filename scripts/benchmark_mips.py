@@ -136,7 +136,7 @@ def main(argv=None):
         print(f"  nside_centers {args.nside_centers}, radius {args.radius:.0f} deg: {name}: {timing[name]:.2f} s, "
               f"{len(got):,} pairs, recall of the exact screen's pairs {len(got & ref) / len(ref):.4f}, "
               f"centres short of K {short}; {load()}", flush=True)
-    search._RING_CACHE.clear()
+    search.clear_ring_caches()
 
     # survival of detected injected pairs at nside_centers 32, radii 20-60 deg step 2
     kept = {name: 0 for name in run}
@@ -155,7 +155,7 @@ def main(argv=None):
                 i, j, _ = fn(F, plan.centres, plan.sep_cos, args.partners, use)
                 got = set(zip(i.tolist(), j.tolist()))
                 kept[name] += sum((min(k["i"], k["j"]), max(k["i"], k["j"])) in got for k in found if k["ir"] == ir)
-        search._RING_CACHE.clear()
+        search.clear_ring_caches()
     best, base = None, timing["screen (exact, own)"]
     for name in run:
         frac = kept[name] / total if total else float("nan")

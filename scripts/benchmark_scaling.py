@@ -78,7 +78,7 @@ def main():
     for w in args.workers:
         cfg = config_from_dict({**base, "compute": {"backend": "processes", "workers": w, "progress": False}},
                                source="benchmark")
-        search._RING_CACHE.clear()
+        search.clear_ring_caches()
         stats = []
 
         def runner(plan, chunks, cfg=cfg):

@@ -38,7 +38,7 @@ def load():
 
 
 def clear():
-    search._RING_CACHE.clear()
+    search.clear_ring_caches()
     from twinring import rings
     if hasattr(rings, "clear_geometry_cache"):
         rings.clear_geometry_cache()

@@ -220,7 +220,7 @@ def test_top_partners_on_sky_features_equals_brute_force(torus_sky):
         got = set(zip(i.tolist(), j.tolist()))
         assert np.all(i < j) and use[i].all() and use[j].all()
         assert len(got ^ ref) <= 4, len(got ^ ref)
-        search._RING_CACHE.clear()
+        search.clear_ring_caches()
 
 
 def test_rings_too_masked_for_the_kernel_are_not_screened():
